@@ -1,0 +1,1 @@
+"""The command line: thin modules that parse arguments and call the library."""

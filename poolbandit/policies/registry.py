@@ -1,0 +1,42 @@
+"""Map policy kinds to their classes and build policies from a design."""
+
+from __future__ import annotations
+
+import importlib
+from typing import TYPE_CHECKING
+
+from ._catalogue import KINDS
+from .base import Policy
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ..simulation.population import Population
+    from ..spec import DesignSpec, PolicySpec
+
+__all__ = ["make_policy", "policy_class", "CLASSES"]
+
+#: kind -> "module:Class" (imported on first use, so heavy kinds cost nothing until asked for)
+CLASSES: dict[str, str] = {
+    "random": "poolbandit.policies.random:RandomPolicy",
+    "epsilon-greedy": "poolbandit.policies.greedy:EpsilonGreedyPolicy",
+    "epsilon-decreasing": "poolbandit.policies.greedy:EpsilonDecreasingPolicy",
+    "ucb1": "poolbandit.policies.ucb:UCB1Policy",
+    "thompson": "poolbandit.policies.thompson:ThompsonPolicy",
+    "regression-epsilon-greedy": "poolbandit.policies.regression:RegressionEpsilonGreedyPolicy",
+    "regression-epsilon-decreasing": "poolbandit.policies.regression:RegressionEpsilonDecreasingPolicy",
+    "oracle": "poolbandit.policies.oracle:OraclePolicy",
+}
+
+
+def policy_class(kind: str) -> type[Policy]:
+    """The class implementing ``kind``."""
+    if kind not in CLASSES:
+        known = ", ".join(sorted(CLASSES))
+        raise ValueError(f"policy kind {kind!r} is not implemented; implemented kinds: {known}")
+    module, name = CLASSES[kind].split(":")
+    return getattr(importlib.import_module(module), name)
+
+
+def make_policy(spec: PolicySpec, design: DesignSpec, *, truth: Population | None = None) -> Policy:
+    """Build the policy named by ``spec``; ``truth`` is passed only to simulation-only kinds."""
+    cls = policy_class(spec.kind)
+    return cls(spec, design, truth=truth if KINDS[spec.kind].simulation_only else None)
