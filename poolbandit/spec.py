@@ -152,7 +152,8 @@ class PriorSpec:
 
     ``beta_sd``: sd of the normal prior on population coefficients;
     ``gamma_sd``: sd of the normal prior on covariate effects;
-    ``tau_scale``: scale of the half-normal prior on heterogeneity scales;
+    ``tau_scale``: scale of the prior on heterogeneity scales;
+    ``tau_family``: ``half-normal`` (default) or ``half-cauchy`` for that prior;
     ``sigma_scale``: scale of the half-normal prior on the noise sd;
     ``covariance``: ``diagonal`` or ``full`` (LKJ with ``lkj_eta``).
     """
@@ -160,6 +161,7 @@ class PriorSpec:
     beta_sd: float = 1.0
     gamma_sd: float = 0.5
     tau_scale: float = 0.5
+    tau_family: Literal["half-normal", "half-cauchy"] = "half-normal"
     sigma_scale: float = 1.0
     covariance: Literal["diagonal", "full"] = "diagonal"
     lkj_eta: float = 2.0
@@ -497,12 +499,15 @@ class _Parser:
         return tuple(out)
 
     def priors(self, raw: Any) -> PriorSpec:
-        t = self.table(raw, "priors", {"beta_sd", "gamma_sd", "tau_scale", "sigma_scale", "covariance", "lkj_eta"})
+        t = self.table(raw, "priors", {"beta_sd", "gamma_sd", "tau_scale", "tau_family", "sigma_scale", "covariance",
+                                       "lkj_eta"})
         pos = Number(0, low_open=True)
         return PriorSpec(
             beta_sd=self.check(pos, t.get("beta_sd", 1.0), "priors.beta_sd"),
             gamma_sd=self.check(pos, t.get("gamma_sd", 0.5), "priors.gamma_sd"),
             tau_scale=self.check(pos, t.get("tau_scale", 0.5), "priors.tau_scale"),
+            tau_family=self.check(Choice(("half-normal", "half-cauchy")), t.get("tau_family", "half-normal"),
+                                  "priors.tau_family"),
             sigma_scale=self.check(pos, t.get("sigma_scale", 1.0), "priors.sigma_scale"),
             covariance=self.check(Choice(("diagonal", "full")), t.get("covariance", "diagonal"), "priors.covariance"),
             lkj_eta=self.check(pos, t.get("lkj_eta", 2.0), "priors.lkj_eta"),
