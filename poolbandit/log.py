@@ -155,7 +155,7 @@ def validate_log(df: pd.DataFrame, design: DesignSpec, *, source: str | None = N
         if not unknown and len(pcols) == design.n_arms:
             table = out[[f"prob_{a}" for a in design.arms]].to_numpy()
             bad(np.abs(table.sum(axis=1) - 1) > 1e-9, "prob_*", "expected probabilities that sum to 1")
-            code = pd.Categorical(out["arm"], categories=design.arms).codes
+            code = pd.Index(design.arms).get_indexer(out["arm"])
             chosen = table[np.arange(len(out)), np.clip(code, 0, None)]
             bad((code >= 0) & (np.abs(chosen - prop) > 1e-9), "propensity", "expected the chosen arm's prob_ value")
 
@@ -181,7 +181,7 @@ def validate_log(df: pd.DataFrame, design: DesignSpec, *, source: str | None = N
 
 def _cell(df: pd.DataFrame, j: int, col: str) -> object:
     v = df[col].iat[j]
-    if isinstance(v, float) and math.isnan(v):
+    if v is None or (isinstance(v, float) and math.isnan(v)):
         return ""
     if isinstance(v, np.generic):
         return v.item()

@@ -544,6 +544,6 @@ class _Parser:
 
 #: Columns of the study log that design names must not shadow.
 _RESERVED_COLUMNS = {
-    "participant", "decision", "arm", "propensity", "reward", "policy", "step",
+    "participant", "decision", "arm", "propensity", "policy", "step",
     "expected_reward", "best_expected_reward", "condition",
 }

@@ -118,7 +118,7 @@ class ModelData:
         code = pos.get_indexer(log["participant"])
         if (code < 0).any():
             raise InputError(f"participant {log['participant'][code < 0].iloc[0]!r} of the log is not in the roster")
-        arm_code = pd.Categorical(log["arm"], categories=design.arms).codes
+        arm_code = pd.Index(design.arms).get_indexer(log["arm"])
         obs = np.isfinite(log[reward].to_numpy(dtype=float))
         ctx = log[list(design.features)].to_numpy(dtype=float) if design.features else np.zeros((len(log), 0))
         X = design_rows(arm_code[obs], ctx[obs], design.n_arms)
