@@ -14,12 +14,12 @@ from .calibration import Calibration, brier_decomposition, calibrate, reliabilit
     true_effects
 from .posterior import POPULATION, PARTICIPANTS, Classification, classify, hdi_table, population_effects, \
     posterior_mean_mcse
-from .rules import UNDETERMINED, category_indicators, contrast_draws, exclusive_codes, rule_contrasts
+from .rules import UNDETERMINED, category_indicators, contrast_draws, describe_rule, exclusive_codes, rule_contrasts
 
 __all__ = [
     "Agreement", "Calibration", "Classification", "Kappa", "PARTICIPANTS", "POPULATION", "UNDETERMINED",
     "agreement", "brier_decomposition", "calibrate", "category_indicators", "classify", "cohens_kappa",
-    "confusion_table", "contrast_draws", "exclusive_codes", "hdi_table", "population_effects",
+    "confusion_table", "contrast_draws", "describe_rule", "exclusive_codes", "hdi_table", "population_effects",
     "posterior_mean_mcse", "read_intake", "reliability_table", "rule_contrasts", "true_categories",
     "true_effects",
 ]

@@ -411,9 +411,9 @@ def population_effects(
 
     with ``w_m`` a participant drawn at random from the observed
     ``covariates`` (``0``, the reference participant, when none are given),
-    and the arm effects in ``context`` follow from the design rows. A
-    posterior with a full covariance (a Cholesky factor ``chol (coef, coef)``
-    or a covariance ``Sigma (coef, coef)``) uses it instead of ``tau``.
+    and the arm effects in ``context`` follow from the design rows. With a
+    full covariance (a posterior ``corr`` over some or all coefficients),
+    ``z`` is correlated: ``Sigma = diag(tau) R diag(tau)``.
 
     Parameters
     ----------
@@ -445,14 +445,10 @@ def population_effects(
     beta = post["beta"].transpose("chain", "draw", ...).to_numpy()  # (c, d, P)
     nc, nd, p = beta.shape
     z = rng.standard_normal((nc, nd, n_new, p))
-    if "chol" in post or "Sigma" in post:
-        if "chol" in post:
-            chol = post["chol"].transpose("chain", "draw", ...).to_numpy()
-        else:
-            chol = np.linalg.cholesky(post["Sigma"].transpose("chain", "draw", ...).to_numpy())
-        dev = np.einsum("cdpq,cdmq->cdmp", chol, z)
-    else:
-        dev = post["tau"].transpose("chain", "draw", ...).to_numpy()[:, :, None, :] * z
+    tau = post["tau"].transpose("chain", "draw", ...).to_numpy()  # (c, d, P)
+    if "corr" in post:
+        z = np.einsum("cdpq,cdmq->cdmp", _full_correlation(post), z)
+    dev = tau[:, :, None, :] * z
     theta = beta[:, :, None, :] + dev
     if "gamma" in post and covariates is not None:
         w_obs = np.asarray(covariates, dtype=float)
@@ -473,3 +469,16 @@ def population_effects(
                 "participant": [f"new{j + 1}" for j in range(n_new)], "arm": list(arms)},
         name="effect",
     )
+
+
+def _full_correlation(post) -> np.ndarray:
+    """Cholesky factors (c, d, P, P) of the correlation matrices, identity outside ``corr``'s coefficients."""
+    corr = post["corr"]
+    coef = [str(c) for c in post["beta"]["coef"].to_numpy()]
+    d1, d2 = [d for d in corr.dims if d not in ("chain", "draw")]
+    idx = [coef.index(str(c)) for c in corr[d1].to_numpy()]
+    r = corr.transpose("chain", "draw", d1, d2).to_numpy()
+    nc, nd = r.shape[:2]
+    full = np.broadcast_to(np.eye(len(coef)), (nc, nd, len(coef), len(coef))).copy()
+    full[:, :, np.ix_(idx, idx)[0], np.ix_(idx, idx)[1]] = r
+    return np.linalg.cholesky(full)

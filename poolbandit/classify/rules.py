@@ -32,6 +32,7 @@ __all__ = [
     "rule_contrasts",
     "contrast_draws",
     "check_categories",
+    "describe_rule",
 ]
 
 #: Name of the remainder of the exclusive set and of the label of participants
@@ -55,6 +56,15 @@ def check_categories(categories: Sequence[CategorySpec], arms: Sequence[str]) ->
             if arm is not None and arm not in arms:
                 raise InputError(f"categories[{i}].{key}: arm {arm!r} is not among the effect's arms {list(arms)}")
     return categories
+
+
+def describe_rule(rule: CategorySpec) -> str:
+    """The rule in words, e.g. ``drill beats every other arm by more than 0.2``."""
+    if rule.form == "best":
+        return f"{rule.arm} beats every other arm by more than {rule.threshold:g}"
+    if rule.form == "beats":
+        return f"{rule.arm} beats {rule.other} by more than {rule.threshold:g}"
+    return f"every pairwise difference between arms lies within +-{rule.threshold:g}"
 
 
 def _rule_values(values: np.ndarray, rule: CategorySpec, arms: Sequence[str]) -> np.ndarray:
