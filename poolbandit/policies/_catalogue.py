@@ -183,14 +183,17 @@ KINDS: dict[str, KindInfo] = {
     # Pooled (hierarchical) policies: see poolbandit.policies.pooled.
     "pooled-thompson": KindInfo(
         {
-            "sweeps": (Number(1, integer=True), 20),
-            "population_draws": (Number(1, integer=True), 8),
+            "sweeps": (Number(1, integer=True), 5),
+            "population_draws": (Number(1, integer=True), 4),
+            "burn_in": (Number(1, integer=True), 100),
             "context": (Flag(), True),
+            "covariates": (Flag(), True),
         },
         summary="Thompson sampling from the partially pooled hierarchical posterior",
     ),
     "complete-pooling-thompson": KindInfo(
-        {"prior_sd": (_POS, 1.0), "noise_sd": (_POS, 1.0), "context": (Flag(), True)},
+        {"prior_mean": (Number(), 0.0), "prior_sd": (_POS, 1.0), "noise_sd": (_POS, 1.0),
+         "prior_alpha": (_POS, 1.0), "prior_beta": (_POS, 1.0), "context": (Flag(), True)},
         summary="Thompson sampling with one set of arm effects shared by everyone",
     ),
     "oracle-prior-thompson": KindInfo(

@@ -24,6 +24,9 @@ CLASSES: dict[str, str] = {
     "regression-epsilon-greedy": "poolbandit.policies.regression:RegressionEpsilonGreedyPolicy",
     "regression-epsilon-decreasing": "poolbandit.policies.regression:RegressionEpsilonDecreasingPolicy",
     "oracle": "poolbandit.policies.oracle:OraclePolicy",
+    "pooled-thompson": "poolbandit.policies.pooled:PooledThompsonPolicy",
+    "complete-pooling-thompson": "poolbandit.policies.pooled:CompletePoolingThompsonPolicy",
+    "oracle-prior-thompson": "poolbandit.policies.pooled:OraclePriorThompsonPolicy",
 }
 
 
