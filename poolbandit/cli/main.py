@@ -24,6 +24,8 @@ __all__ = ["main", "build_parser"]
 _COMMANDS = [
     "demo",
     "simulate",
+    "classify",
+    "study",
 ]
 
 

@@ -1,0 +1,286 @@
+"""Derive a step's assignments from the store, the same way every time.
+
+The assignment of step ``s`` is a function of three things only: the design
+(with the policy named at ``init``), the data committed before the step's
+batch, and the study seed. :func:`derive` rebuilds the policy from scratch
+each time::
+
+    policy = make_policy(spec, design)
+    policy.start(covariates of the adaptive roster)   # in enrolment order
+    for t in past steps, in order:
+        policy.note_assigned(adaptive decisions of step t)
+        policy.observe(their outcomes as recorded before step s)  # latest version
+    policy.assign(batch of step s, rng of step s)
+
+with the step's generators from ``SeedSequence(seed, spawn_key=(0, s, 0))``
+(adaptive) and ``(0, s, 1)`` (uniform control). ``study assign`` calls it
+inside the write transaction; ``study verify`` calls it again for every
+stored step with the data visible at that step (rows whose ``batch`` is
+smaller than the step's) and compares bit for bit. Outcomes recorded late
+are seen by the first step assigned after they were recorded, not before.
+
+Enrolment randomisation between the adaptive and the control condition uses
+``SeedSequence(seed, spawn_key=(1, j))`` for the ``j``-th randomisation: a
+uniformly random permutation of the file's participants, the first
+``round(R n)`` of which go to control (:func:`randomise`).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import sqlite3
+from dataclasses import dataclass
+
+import numpy as np
+
+from .._random import as_generator
+from ..policies._probability import draw_arms
+from ..policies.base import Batch
+from ..policies.registry import make_policy
+from ..spec import DesignSpec, PolicySpec
+
+__all__ = ["History", "Due", "Derived", "load_history", "due", "derive", "randomise", "step_keys",
+           "control_name", "json_floats", "parse_json_floats"]
+
+ASSIGN_STREAM = 0
+ENROL_STREAM = 1
+
+
+def step_keys(step: int) -> tuple[tuple[int, ...], tuple[int, ...]]:
+    """Spawn keys of the adaptive and the control generator of ``step``."""
+    return (ASSIGN_STREAM, int(step), 0), (ASSIGN_STREAM, int(step), 1)
+
+
+def _generator(seed: int, key: tuple[int, ...]) -> np.random.Generator:
+    return as_generator(np.random.SeedSequence(seed, spawn_key=key))
+
+
+def key_text(key: tuple[int, ...]) -> str:
+    return ",".join(str(k) for k in key)
+
+
+def control_name(design: DesignSpec) -> str:
+    """Policy name logged for control decisions: the design's first ``random`` policy, else ``control``."""
+    for name, spec in design.policies.items():
+        if spec.kind == "random":
+            return name
+    return "control"
+
+
+def json_floats(row: np.ndarray) -> str:
+    """A JSON list of floats that reads back bit for bit (shortest round-trip repr)."""
+    return "[" + ",".join(repr(float(x)) for x in row) + "]"
+
+
+def parse_json_floats(texts: list[str], width: int) -> np.ndarray:
+    """Parse many JSON lists of floats at once into an (n, width) array."""
+    if not texts:
+        return np.zeros((0, width))
+    return np.asarray(json.loads("[" + ",".join(texts) + "]"), dtype=float).reshape(len(texts), width)
+
+
+def randomise(seed: int, index: int, n: int, ratio: float) -> np.ndarray:
+    """Control flags for ``n`` participants (file order): exactly ``round(ratio n)`` controls.
+
+    ``round`` is half up. The permutation comes from
+    ``SeedSequence(seed, spawn_key=(1, index))``.
+    """
+    n_control = int(math.floor(ratio * n + 0.5))
+    perm = _generator(seed, (ENROL_STREAM, int(index))).permutation(n)
+    control = np.zeros(n, dtype=bool)
+    control[perm[:n_control]] = True
+    return control
+
+
+# --------------------------------------------------------------------------
+# The store as arrays
+# --------------------------------------------------------------------------
+@dataclass
+class History:
+    """Everything in the store that an assignment depends on, as arrays.
+
+    Participants are in enrolment order (row id); decisions in (step,
+    participant) order; outcomes in recording order (row id).
+    """
+
+    design: DesignSpec
+    spec: PolicySpec
+    seed: int
+    # participants
+    p_id: np.ndarray
+    ids: np.ndarray
+    p_batch: np.ndarray
+    enrol_step: np.ndarray
+    control: np.ndarray
+    covariates: np.ndarray
+    # decisions
+    d_id: np.ndarray
+    d_part: np.ndarray       # index into the participant arrays
+    d_decision: np.ndarray
+    d_step: np.ndarray
+    d_arm: np.ndarray        # arm index
+    d_context: np.ndarray    # (n, F)
+    # outcomes
+    o_id: np.ndarray
+    o_dec: np.ndarray        # index into the decision arrays
+    o_reward: np.ndarray
+    o_batch: np.ndarray
+    # steps
+    step_batch: dict[int, int]
+
+    @property
+    def n_participants(self) -> int:
+        return len(self.p_id)
+
+
+def load_history(conn: sqlite3.Connection, design: DesignSpec, spec: PolicySpec, seed: int) -> History:
+    """Read the store into a :class:`History` (inside the caller's transaction)."""
+    q, f = len(design.covariates), len(design.features)
+    rows = conn.execute("SELECT id, participant, batch, enrol_step, covariates, condition "
+                        "FROM participants ORDER BY id").fetchall()
+    p_id = np.array([r[0] for r in rows], dtype=np.int64)
+    ids = np.array([r[1] for r in rows], dtype=object)
+    p_batch = np.array([r[2] for r in rows], dtype=np.int64)
+    enrol = np.array([r[3] for r in rows], dtype=np.int64)
+    control = np.array([r[5] == "control" for r in rows], dtype=bool)
+    cov = parse_json_floats([r[4] for r in rows], q)
+    rows = conn.execute("SELECT id, participant, decision, step, arm, context FROM decisions "
+                        "ORDER BY step, participant").fetchall()
+    d_id = np.array([r[0] for r in rows], dtype=np.int64)
+    d_part = np.searchsorted(p_id, np.array([r[1] for r in rows], dtype=np.int64))
+    d_decision = np.array([r[2] for r in rows], dtype=np.int64)
+    d_step = np.array([r[3] for r in rows], dtype=np.int64)
+    arm_index = {a: k for k, a in enumerate(design.arms)}
+    d_arm = np.array([arm_index[r[4]] for r in rows], dtype=np.int64)
+    d_ctx = parse_json_floats([r[5] for r in rows], f)
+    rows = conn.execute("SELECT id, decision, reward, batch FROM outcomes ORDER BY id").fetchall()
+    o_id = np.array([r[0] for r in rows], dtype=np.int64)
+    order = np.argsort(d_id, kind="stable")
+    o_dec = order[np.searchsorted(d_id[order], np.array([r[1] for r in rows], dtype=np.int64))] \
+        if rows else np.zeros(0, dtype=np.int64)
+    o_reward = np.array([np.nan if r[2] is None else r[2] for r in rows], dtype=float)
+    o_batch = np.array([r[3] for r in rows], dtype=np.int64)
+    step_batch = dict(conn.execute("SELECT step, batch FROM steps").fetchall())
+    return History(design, spec, seed, p_id, ids, p_batch, enrol, control, cov, d_id, d_part, d_decision,
+                   d_step, d_arm, d_ctx, o_id, o_dec, o_reward, o_batch, step_batch)
+
+
+def latest_rewards(history: History, batch_limit: int) -> np.ndarray:
+    """The reward of every decision as recorded before ``batch_limit`` (latest version; NaN if none)."""
+    out = np.full(len(history.d_id), np.nan)
+    vis = np.flatnonzero(history.o_batch < batch_limit)
+    if len(vis):
+        rev = history.o_dec[vis][::-1]
+        dec, first = np.unique(rev, return_index=True)
+        out[dec] = history.o_reward[vis][::-1][first]
+    return out
+
+
+# --------------------------------------------------------------------------
+# Who is due, and what they get
+# --------------------------------------------------------------------------
+@dataclass(frozen=True)
+class Due:
+    """The participants due a decision at a step (indices into the participant arrays)."""
+
+    step: int
+    participant: np.ndarray
+    decision: np.ndarray
+
+
+def due(history: History, step: int, batch_limit: int) -> Due:
+    """Participants enrolled before ``batch_limit``, started by ``step``, with decisions left."""
+    n = history.n_participants
+    before = history.d_step < step
+    made = np.bincount(history.d_part[before], minlength=n) if n else np.zeros(0, dtype=np.int64)
+    ok = (history.p_batch < batch_limit) & (history.enrol_step <= step) & (made < history.design.study.horizon)
+    who = np.flatnonzero(ok)
+    return Due(step, who, made[who] + 1)
+
+
+@dataclass(frozen=True)
+class Derived:
+    """A step's assignments, aligned with :class:`Due` (participant order)."""
+
+    arm: np.ndarray
+    propensity: np.ndarray
+    probabilities: np.ndarray
+    control: np.ndarray
+    policy: np.ndarray
+    spawn_key: np.ndarray
+    snapshot: str | None
+
+
+def derive(history: History, who: Due, context: np.ndarray, batch_limit: int) -> Derived:
+    """The assignments of step ``who.step`` (see the module docstring).
+
+    ``context`` is (n_due, F), aligned with ``who.participant``.
+    """
+    design, step = history.design, who.step
+    k = design.n_arms
+    visible = history.p_batch < batch_limit
+    adaptive = np.flatnonzero(visible & ~history.control)
+    pos = np.full(history.n_participants, -1, dtype=np.int64)
+    pos[adaptive] = np.arange(len(adaptive))
+    n = len(who.participant)
+    arm = np.zeros(n, dtype=np.int64)
+    prop = np.zeros(n)
+    table = np.zeros((n, k))
+    is_control = history.control[who.participant]
+    key_a, key_c = step_keys(step)
+    snapshot = None
+
+    rows_a = np.flatnonzero(~is_control)
+    if len(rows_a):
+        policy = make_policy(history.spec, design)
+        policy.start(history.covariates[adaptive])
+        reward = latest_rewards(history, batch_limit)
+        past = np.flatnonzero((history.d_step < step) & (pos[history.d_part] >= 0))
+        steps = history.d_step[past]
+        cuts = np.flatnonzero(np.diff(steps)) + 1
+        for chunk in np.split(past, cuts) if len(past) else []:
+            p = pos[history.d_part[chunk]]
+            a = history.d_arm[chunk]
+            policy.note_assigned(p, a, history.d_decision[chunk])
+            policy.observe(p, a, history.d_context[chunk], reward[chunk])
+        part = who.participant[rows_a]
+        batch = Batch(pos[part], who.decision[rows_a], np.asarray(context, dtype=float)[rows_a], step)
+        got = policy.assign(batch, _generator(history.seed, key_a))
+        arm[rows_a], prop[rows_a], table[rows_a] = got.arm, got.propensity, got.probabilities
+        snapshot = posterior_snapshot(policy)
+    rows_c = np.flatnonzero(is_control)
+    if len(rows_c):
+        uniform = np.full((len(rows_c), k), 1.0 / k)
+        arm[rows_c], prop[rows_c] = draw_arms(uniform, _generator(history.seed, key_c))
+        table[rows_c] = uniform
+    names = np.where(is_control, control_name(design), history.spec.name).astype(object)
+    keys = np.where(is_control, key_text(key_c), key_text(key_a)).astype(object)
+    return Derived(arm, prop, table, is_control, names, keys, snapshot)
+
+
+def posterior_snapshot(policy) -> str | None:
+    """A JSON summary of a pooled policy's current posterior, or None for other kinds.
+
+    Uses the policy's ``posterior_summary()`` when it has one (a mapping or a
+    DataFrame); the JSON is canonical (sorted keys) so that ``verify`` can
+    compare it.
+    """
+    fn = getattr(policy, "posterior_summary", None)
+    if fn is None:
+        return None
+    summary = fn()
+    if summary is None:
+        return None
+    if hasattr(summary, "to_dict"):
+        summary = summary.reset_index().to_dict(orient="list") if hasattr(summary, "reset_index") \
+            else summary.to_dict()
+    return json.dumps(summary, sort_keys=True, default=_jsonable)
+
+
+def _jsonable(x):
+    if isinstance(x, np.generic):
+        return x.item()
+    if isinstance(x, np.ndarray):
+        return x.tolist()
+    raise TypeError(f"cannot store {type(x).__name__} in a posterior snapshot")
