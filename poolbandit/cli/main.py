@@ -26,6 +26,7 @@ _COMMANDS = [
     "simulate",
     "classify",
     "study",
+    "analyse",
 ]
 
 
