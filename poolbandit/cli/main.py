@@ -30,8 +30,8 @@ _COMMANDS = [
 ]
 
 
-def build_parser() -> argparse.ArgumentParser:
-    """The top-level parser with every subcommand registered."""
+def build_parser(only: str | None = None) -> argparse.ArgumentParser:
+    """The top-level parser with every subcommand registered (or only the module ``only``)."""
     parser = argparse.ArgumentParser(
         prog="poolbandit",
         description="Design, run and report short adaptive intervention studies with partially pooled bandits.",
@@ -41,7 +41,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"poolbandit {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
-    for name in _COMMANDS:
+    for name in _COMMANDS if only is None else [only]:
         importlib.import_module(f"{__package__}.{name}").register(sub)
     return parser
 
@@ -49,7 +49,10 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: list[str] | None = None) -> int:
     """Run the command line; returns (and, as a script, exits with) the status."""
     warnings.filterwarnings("ignore", message=".*ArviZ is undergoing a major refactor.*")
-    parser = build_parser()
+    argv = sys.argv[1:] if argv is None else list(argv)
+    # import only the invoked command's module: a command never pays for another's heavy imports
+    first = next((a for a in argv if not a.startswith("-")), None)
+    parser = build_parser(first if first in _COMMANDS else None)
     args = parser.parse_args(argv)
     try:
         status = args.run(args)
