@@ -21,7 +21,7 @@ def prob_best(dist, *, points_per_arm: int = 48, tail: float = 1e-9) -> np.ndarr
 
     Parameters
     ----------
-    dist : scipy.stats frozen distribution
+    dist : scipy.stats frozen distribution or a :mod:`._marginals` distribution
         Continuous, with parameters broadcasting to shape ``(n, K)``: arm
         ``k`` of row ``i`` has marginal ``dist`` at ``[i, k]``.
     points_per_arm : int, default=48
@@ -56,15 +56,17 @@ def prob_best(dist, *, points_per_arm: int = 48, tail: float = 1e-9) -> np.ndarr
     cdf = dist.cdf(grid)  # (n, K, M)
     dF = np.diff(cdf, axis=-1)  # (n, K, M-1)
     out = np.empty((n, k))
-    for j in range(k):
-        others = np.prod(np.delete(cdf, j, axis=1), axis=1)  # (n, M)
-        out[:, j] = np.sum(dF[:, j, :] * 0.5 * (others[:, 1:] + others[:, :-1]), axis=-1)
+    for j in range(k):  # a loop over arms, not participants
+        others = np.prod(np.delete(cdf, j, axis=1), axis=1)  # (n, M): prod over i != j of F_i
+        out[:, j] = np.sum(dF[:, j, :] * (others[:, 1:] + others[:, :-1]), axis=-1) * 0.5
     out = np.clip(out, 0.0, None)
     return out / out.sum(axis=1, keepdims=True)
 
 
 def _with_trailing_axis(dist):
-    """The same frozen distribution with parameters of shape (n, K, 1)."""
+    """The same distribution with parameters of shape (n, K, 1)."""
+    if hasattr(dist, "expand"):
+        return dist.expand()
     args = [np.asarray(a, dtype=float)[..., None] for a in dist.args]
     kwds = {key: np.asarray(v, dtype=float)[..., None] for key, v in dist.kwds.items()}
     return dist.dist(*args, **kwds)

@@ -28,8 +28,8 @@ from __future__ import annotations
 
 import numpy as np
 import xarray as xr
-from scipy import stats
 
+from ._marginals import Beta, Normal, StudentT
 from ._probability import prob_best
 from ._stats import ArmStats
 from .base import Batch, Policy
@@ -53,16 +53,16 @@ class ThompsonPolicy(Policy):
         self.stats.add(participant, arm, reward)
 
     def posterior(self, participant: np.ndarray):
-        """Frozen scipy distribution of each arm mean, parameters of shape (n, K)."""
+        """Distribution of each arm mean (parameters of shape (n, K); scipy.stats-like methods)."""
         s = self.stats
         n, total, squares = s.n[participant], s.total[participant], s.squares[participant]
         p = self.params
         if self.model == "beta-bernoulli":
-            return stats.beta(p["prior_alpha"] + total, p["prior_beta"] + n - total)
+            return Beta(p["prior_alpha"] + total, p["prior_beta"] + n - total)
         if self.model == "normal":
             prec = 1.0 / p["prior_sd"] ** 2 + n / p["noise_sd"] ** 2
             mean = (p["prior_mean"] / p["prior_sd"] ** 2 + total / p["noise_sd"] ** 2) / prec
-            return stats.norm(mean, 1.0 / np.sqrt(prec))
+            return Normal(mean, 1.0 / np.sqrt(prec))
         # normal-inverse-gamma
         kappa0 = 1.0 / p["prior_sd"] ** 2
         m0, a0, b0 = p["prior_mean"], p["prior_shape"], p["prior_rate"]
@@ -73,7 +73,7 @@ class ThompsonPolicy(Policy):
         mean = (kappa0 * m0 + total) / kappa
         a = a0 + n / 2
         b = b0 + 0.5 * ss + 0.5 * kappa0 * n * (ybar - m0) ** 2 / kappa
-        return stats.t(2 * a, mean, np.sqrt(b / (a * kappa)))
+        return StudentT(2 * a, mean, np.sqrt(b / (a * kappa)))
 
     def _probabilities(self, batch: Batch, rng: np.random.Generator) -> np.ndarray:
         return prob_best(self.posterior(batch.participant))
@@ -89,7 +89,8 @@ class ThompsonPolicy(Policy):
         unpooled designs alike.
         """
         dist = self.posterior(np.arange(self.n_participants))
-        x = dist.rvs(size=(draws, self.n_participants, self.n_arms), random_state=rng)
+        u = rng.random((draws, self.n_participants, self.n_arms))
+        x = dist.ppf(np.clip(u, 1e-15, 1 - 1e-15))  # inversion: exact draws from each marginal
         return xr.DataArray(
             x[None], dims=("chain", "draw", "participant", "arm"),
             coords={"chain": [0], "draw": np.arange(draws), "participant": list(ids), "arm": list(self.design.arms)},

@@ -76,16 +76,18 @@ def context_for(design: DesignSpec, population: Population, streams: Streams, pa
 
 
 def run_policy(design: DesignSpec, spec: PolicySpec, population: Population, streams: Streams,
-               rng: RngLike = None) -> SimulationResult:
+               rng: RngLike = None, *, policy: Policy | None = None) -> SimulationResult:
     """Run one policy on one population with the given environment streams.
 
     The policy's own randomness comes from ``rng``; everything about the
     participants and their rewards comes from ``population`` and ``streams``,
     so two policies run on the same pair see the same world (common random
-    numbers).
+    numbers). ``policy`` may supply a ready-made (not yet started) policy
+    object instead of building one from ``spec``.
     """
     rng = as_generator(rng)
-    policy = make_policy(spec, design, truth=population)
+    if policy is None:
+        policy = make_policy(spec, design, truth=population)
     policy.start(population.covariates)
     n = population.size
     enrol, last = population.enrol_step, population.enrol_step + streams.n_decisions - 1
