@@ -6,7 +6,7 @@ VENV   ?= .venv
 BIN    := $(VENV)/bin
 OUT    ?= demo-output
 
-.PHONY: demo test install install-test bench clean
+.PHONY: demo test install install-test browser bench clean
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -15,9 +15,15 @@ $(BIN)/python:
 install: $(BIN)/python
 	$(BIN)/python -m pip install --quiet -e .
 
-install-test: $(BIN)/python
+install-test: $(BIN)/python browser
 	$(BIN)/python -m pip install --quiet -e ".[test]"
 	$(BIN)/python -m ipykernel install --user --name poolbandit >/dev/null
+
+# Headless Chromium (Debian's package) renders the HTML reports in the tests.
+browser:
+	@command -v chromium >/dev/null 2>&1 || { \
+	  if [ "$$(id -u)" = 0 ]; then apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq chromium >/dev/null; \
+	  else sudo apt-get update -qq && sudo DEBIAN_FRONTEND=noninteractive apt-get install -y -qq chromium >/dev/null; fi; }
 
 demo: install
 	$(BIN)/poolbandit demo --out $(OUT)
