@@ -74,11 +74,11 @@ References
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Literal
 
 import numpy as np
-import scipy.linalg as sla
 import scipy.sparse as sp
 from scipy.sparse.csgraph import connected_components
 
@@ -403,20 +403,30 @@ class GibbsSampler:
         # 2a. heterogeneity scales, theta integrated out
         for p in np.flatnonzero(self._random):
             idx, Ab, bb, mb = blocks[self._block_of[p]]
-            j = int(np.searchsorted(idx, p))
-            Cb = None if self._corr_chol is None else self._corr_chol[np.ix_(idx, idx)]
-            tau_b = self._tau[idx].copy()
+            if len(idx) == 1:  # scalar block: precompute what does not move with tau_p
+                a = Ab[:, 0, 0]
+                r2 = (bb[:, 0] - a * mb[:, 0]) ** 2
 
-            def logf(x, j=j, tau_b=tau_b, Ab=Ab, bb=bb, mb=mb, Cb=Cb):
-                t = np.exp(x)
-                tau_b[j] = t
-                Lb = np.diag(tau_b) if Cb is None else tau_b[:, None] * Cb
-                return gm.block_collapsed(Ab, bb, mb, Lb) + self._log_prior_tau(t) + x
+                def logf(x, a=a, r2=r2):
+                    l2 = math.exp(2.0 * x)
+                    Mi = 1.0 + l2 * a
+                    return (0.5 * l2 * float(np.sum(r2 / Mi)) - 0.5 * float(np.sum(np.log(Mi)))
+                            + self._log_prior_tau(math.exp(x)) + x)
+            else:
+                j = int(np.searchsorted(idx, p))
+                Cb = None if self._corr_chol is None else self._corr_chol[np.ix_(idx, idx)]
+                tau_b = self._tau[idx].copy()
 
-            x, k = gm.slice_step(np.log(self._tau[p]), logf, rng)
+                def logf(x, j=j, tau_b=tau_b, Ab=Ab, bb=bb, mb=mb, Cb=Cb):
+                    t = math.exp(x)
+                    tau_b[j] = t
+                    Lb = np.diag(tau_b) if Cb is None else tau_b[:, None] * Cb
+                    return gm.block_collapsed(Ab, bb, mb, Lb) + self._log_prior_tau(t) + x
+
+            x, k = gm.slice_step(math.log(self._tau[p]), logf, rng)
             self.n_evals += k
             tau = self._tau.copy()
-            tau[p] = np.exp(x)
+            tau[p] = math.exp(x)
             self._tau = tau
         # 2b. correlations (full covariance), theta integrated out
         if self._full and len(self._cpc):
@@ -463,20 +473,33 @@ class GibbsSampler:
 
     def _update_sigma(self, m: np.ndarray) -> None:
         L = self._L()
-        parts = [(self._S[:, idx[:, None], idx[None, :]], self._s[:, idx], m[:, idx], L[np.ix_(idx, idx)])
-                 for idx in self._blocks]
         n_obs, yy, scale = self._n_obs, self._yy, self.priors.sigma_scale
+        scalar, general = [], []
+        const = 0.0  # sum_i (s_i'm_i - m_i'S_i m_i / 2): multiplies 1 / sigma^2
+        for idx in self._blocks:
+            S, sb, mb = self._S[:, idx[:, None], idx[None, :]], self._s[:, idx], m[:, idx]
+            Lb = L[np.ix_(idx, idx)]
+            const += float(np.sum(sb * mb) - 0.5 * np.einsum("ni,nij,nj->", mb, S, mb))
+            if len(idx) == 1:
+                if Lb[0, 0] > 0:
+                    u = sb[:, 0] - S[:, 0, 0] * mb[:, 0]
+                    scalar.append((S[:, 0, 0], u * u, Lb[0, 0] ** 2))
+            elif np.any(Lb):
+                general.append((S, sb, mb, Lb))
 
         def logf(x):
-            s2 = np.exp(2.0 * x)
-            total = -n_obs * x - 0.5 * yy / s2
-            for S, s, mb, Lb in parts:
-                total += gm.block_collapsed(S / s2, s / s2, mb, Lb, with_mean_terms=True)
+            s2 = math.exp(2.0 * x)
+            total = -n_obs * x + (const - 0.5 * yy) / s2
+            for Sd, u2, l2 in scalar:  # 1x1 blocks, see _gibbs_math.block_collapsed
+                v = s2 + l2 * Sd
+                total += 0.5 * l2 * float(np.sum(u2 / v)) / s2 - 0.5 * float(np.sum(np.log(v / s2)))
+            for S, sb, mb, Lb in general:
+                total += gm.block_collapsed(S / s2, sb / s2, mb, Lb)
             return total - 0.5 * s2 / scale**2 + x
 
-        x, k = gm.slice_step(np.log(self._sigma), logf, self._rng)
+        x, k = gm.slice_step(math.log(self._sigma), logf, self._rng)
         self.n_evals += k
-        self._sigma = float(np.exp(x))
+        self._sigma = float(math.exp(x))
 
     def _update_mean(self, A: np.ndarray, b: np.ndarray) -> None:
         L = self._L()
@@ -488,15 +511,18 @@ class GibbsSampler:
             Pm[:, idx[:, None], idx[None, :]] = Pb
             cm[:, idx] = cb
         Z = self._Z
-        D = Z.shape[1] * P
-        prec = np.einsum("na,nb,npq->apbq", Z, Z, Pm, optimize=True).reshape(D, D)
-        lin = np.einsum("na,np->ap", Z, cm).reshape(D)
+        a = Z.shape[1]
+        D = a * P
+        # sum_i (z_i z_i') (x) P_i, ordered (covariate slot, coefficient)
+        zz = (Z[:, :, None] * Z[:, None, :]).reshape(N, a * a)
+        prec = (zz.T @ Pm.reshape(N, P * P)).reshape(a, a, P, P).transpose(0, 2, 1, 3).reshape(D, D)
+        lin = (Z.T @ cm).reshape(D)
         prior = np.concatenate([np.full(P, self.priors.beta_sd ** -2.0),
                                 np.full(D - P, self.priors.gamma_sd ** -2.0)])
         prec[np.diag_indices(D)] += prior
-        U = sla.cholesky(prec, lower=False)  # prec = U'U
-        mean = sla.cho_solve((U, False), lin)
-        eta = mean + sla.solve_triangular(U, self._rng.standard_normal(D), lower=False)
+        Lp = np.linalg.cholesky(prec)  # prec = Lp Lp'
+        mean = np.linalg.solve(Lp.T, np.linalg.solve(Lp, lin))
+        eta = mean + np.linalg.solve(Lp.T, self._rng.standard_normal(D))
         eta = eta.reshape(Z.shape[1], P)
         self._beta = eta[0].copy()
         self._gamma = eta[1:].T.copy()
