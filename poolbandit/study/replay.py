@@ -260,22 +260,46 @@ def derive(history: History, who: Due, context: np.ndarray, batch_limit: int) ->
 
 
 def posterior_snapshot(policy) -> str | None:
-    """A JSON summary of a pooled policy's current posterior, or None for other kinds.
+    """A JSON summary of a pooled policy's posterior at this step, or None for other kinds.
 
-    Uses the policy's ``posterior_summary()`` when it has one (a mapping or a
-    DataFrame); the JSON is canonical (sorted keys) so that ``verify`` can
-    compare it.
+    A policy's own ``posterior_summary()`` (a mapping or a DataFrame) is used
+    when it has one. Otherwise, from the policies' public state:
+
+    * ``pooled-thompson``: the population parameters (``beta``, ``tau``,
+      ``sigma``) of the last Gibbs sweep the step's probabilities used,
+      labelled by coefficient, and the number of observations;
+    * ``complete-pooling-thompson`` (gaussian): the posterior mean and sd of
+      every shared coefficient.
+
+    The JSON is canonical (sorted keys, round-trip floats) so that
+    ``verify`` can compare it exactly.
     """
     fn = getattr(policy, "posterior_summary", None)
-    if fn is None:
-        return None
-    summary = fn()
+    summary = None
+    if fn is not None:
+        summary = fn()
+        if hasattr(summary, "reset_index"):
+            summary = summary.reset_index().to_dict(orient="list")
+    elif policy.kind == "pooled-thompson" and getattr(policy, "sampler", None) is not None:
+        st = policy.sampler.state
+        summary = {"source": "last Gibbs sweep of the step", "coef": _coef_labels(policy, len(st.beta)),
+                   "beta": st.beta, "tau": st.tau, "sigma": st.sigma,
+                   "observations": int(len(policy.model_data().y))}
+    elif policy.kind == "complete-pooling-thompson" and policy.design.study.outcome == "gaussian":
+        mean, cov = policy.posterior()
+        summary = {"source": "conjugate posterior", "coef": _coef_labels(policy, len(mean)), "mean": mean,
+                   "sd": np.sqrt(np.diag(cov))}
     if summary is None:
         return None
-    if hasattr(summary, "to_dict"):
-        summary = summary.reset_index().to_dict(orient="list") if hasattr(summary, "reset_index") \
-            else summary.to_dict()
     return json.dumps(summary, sort_keys=True, default=_jsonable)
+
+
+def _coef_labels(policy, n_coef: int) -> list[str]:
+    from ..models.design_matrix import coef_names
+
+    design = policy.design
+    features = design.features if n_coef == design.n_arms * (1 + len(design.features)) else ()
+    return coef_names(design.arms, features)
 
 
 def _jsonable(x):
