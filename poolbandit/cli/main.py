@@ -27,6 +27,7 @@ _COMMANDS = [
     "classify",
     "study",
     "analyse",
+    "fit",
 ]
 
 
