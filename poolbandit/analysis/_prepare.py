@@ -155,7 +155,7 @@ def prepare(log: pd.DataFrame, design) -> Prepared:
         notes.append(f"{int((~present).sum())} participant(s) have no observed reward and are left out.")
     ids = [p for p, ok in zip(ids, present) if ok]
     code = pd.Index(ids).get_indexer(part)
-    arm = pd.Categorical(log["arm"].to_numpy()[rows], categories=design.arms).codes.astype(np.int64)
+    arm = pd.Index(design.arms).get_indexer(log["arm"].to_numpy()[rows]).astype(np.int64)
     counts = np.bincount(code, minlength=len(ids))
     balance = 1.0 / counts[code]
 

@@ -116,7 +116,7 @@ def ridge_outcome_model(*, penalty: float = 4.0, sequential: bool = False) -> Ou
         ctx = log[list(design.features)].to_numpy(dtype=float) if design.features else np.zeros((len(log), 0))
         y = log[design.study.reward].to_numpy(dtype=float)
         obs = np.isfinite(y)
-        arm = pd.Categorical(log["arm"], categories=design.arms).codes
+        arm = pd.Index(design.arms).get_indexer(log["arm"])
         ids = pd.unique(log["participant"])
         code = pd.Index(ids).get_indexer(log["participant"])
         X = design_rows(np.clip(arm, 0, None), ctx, k)

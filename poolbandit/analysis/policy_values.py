@@ -136,7 +136,7 @@ def replay_probabilities(log: pd.DataFrame, design, policy: str, *, rng: RngLike
     pol.start(cov)
     step = log["step"].to_numpy() if "step" in log.columns else log["decision"].to_numpy() - 1
     decision = log["decision"].to_numpy()
-    arm = pd.Categorical(log["arm"], categories=design.arms).codes.astype(np.int64)
+    arm = pd.Index(design.arms).get_indexer(log["arm"]).astype(np.int64)
     ctx = log[list(design.features)].to_numpy(dtype=float) if design.features else np.zeros((len(log), 0))
     y = log[design.study.reward].to_numpy(dtype=float)
     out = np.empty((len(log), design.n_arms))

@@ -33,7 +33,8 @@ def analysis_page(result: AnalysisResult, *, level: float = 0.95):
                    + ". Rows with status 'refused' could not be estimated from this log; the note says why.")
     av = result.arm_values
     wide = av[av["group"] == "all"].pivot(index="arm", columns="estimator", values="estimate")
-    wide = wide[[c for c in ("naive", "ipw", "hajek", "dr", "model") if c in wide.columns]]
+    wide = wide.reindex(index=pd.unique(av["arm"]),
+                        columns=[c for c in ("naive", "ipw", "hajek", "dr", "model") if c in wide.columns])
     page.table(wide.reset_index(), caption="Point estimates by estimator (all participants)")
     page.table(_interval(av), caption="All estimates", max_rows=200)
 
