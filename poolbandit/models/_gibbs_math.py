@@ -44,8 +44,7 @@ __all__: list[str] = []  # private module
 def _block_prepare(A: np.ndarray, L: np.ndarray):
     """``M_i = I + L'A_iL`` and its Cholesky factor, batched: (N, k, k)."""
     k = L.shape[0]
-    LAL = np.einsum("pi,npq,qj->nij", L, A, L, optimize=True)
-    M = LAL + np.eye(k)
+    M = L.T @ A @ L + np.eye(k)
     return np.linalg.cholesky(M)
 
 
@@ -89,7 +88,7 @@ def block_mean_precision(A: np.ndarray, b: np.ndarray, L: np.ndarray):
     if not np.any(L):
         return A, b
     C = _block_prepare(A, L)
-    LtA = np.einsum("pi,npq->niq", L, A)  # L'A_i
+    LtA = L.T @ A  # L'A_i
     G = np.linalg.solve(C, LtA)  # C^{-1} L'A_i
     g = np.linalg.solve(C, (b @ L)[..., None])[..., 0]  # C^{-1} L'b_i
     return A - np.einsum("nki,nkj->nij", G, G), b - np.einsum("nki,nk->ni", G, g)

@@ -371,12 +371,12 @@ class GibbsSampler:
         m = self._mean()
         L = self._L()
         P = L.shape[0]
-        C = np.linalg.cholesky(np.einsum("pi,npq,qj->nij", L, A, L) + np.eye(P))
+        C = np.linalg.cholesky(L.T @ A @ L + np.eye(P))
         r = b - np.einsum("nij,nj->ni", A, m)
         u = np.linalg.solve(C, (r @ L)[..., None])
         z = np.linalg.solve(np.swapaxes(C, 1, 2), u)[..., 0]
         Cinv_t = np.linalg.solve(np.swapaxes(C, 1, 2), np.broadcast_to(np.eye(P), C.shape))
-        return m + z @ L.T, np.einsum("pk,nkj->npj", L, Cinv_t)
+        return m + z @ L.T, L @ Cinv_t
 
     def _log_prior_tau(self, t: float) -> float:
         s = self.priors.tau_scale
