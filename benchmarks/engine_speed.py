@@ -1,0 +1,116 @@
+"""Speed and mixing of the model engines, measured side by side in one run.
+
+Prints
+
+1. the fast engine's mixing at every stage of a simulated 60 x 21 x 3 study
+   (data frozen after decisions 1, 3 and 20; 4 chains from dispersed starts):
+   the largest R-hat over the heterogeneity scales tau, the worst ESS per sweep
+   over tau, and sweeps per second;
+2. the fast engine at N = 10,000 participants and K = 4 arms (21 decisions
+   each): sweeps per second and peak traced memory (tracemalloc);
+3. the full (PyMC NUTS) engine's ESS per second relative to the fast engine
+   (:func:`nuts_section`, filled in by the full engine's owner).
+
+Run: ``.venv/bin/python benchmarks/engine_speed.py [--quick]``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import time
+import tracemalloc
+import warnings
+
+import arviz as az
+import numpy as np
+
+from poolbandit.models import GibbsSampler, ModelData, sample_fast
+from poolbandit.simulation import simulate
+from poolbandit.spec import parse_design
+
+warnings.filterwarnings("ignore", message=".*ArviZ is undergoing a major refactor.*")
+
+__all__ = ["study_design", "mixing_table", "large_scale", "nuts_section", "main"]
+
+_TOML = """
+[study]
+arms = {arms}
+horizon = 21
+outcome = "{outcome}"
+[population]
+size = {size}
+arm_means = {means}
+arm_sd = {sds}
+noise_sd = 1.0
+[policies.control]
+kind = "random"
+"""
+
+
+def study_design(outcome: str = "gaussian", *, size: int = 60, n_arms: int = 3):
+    """The benchmark study: arm means (0, 0.3, -0.2[, 0.1]), heterogeneity 0.5, noise 1."""
+    arms = ["drill", "story", "roleplay", "podcast"][:n_arms]
+    means = [0.0, 0.3, -0.2, 0.1][:n_arms]
+    text = _TOML.format(arms=arms, outcome=outcome, size=size, means=means, sds=[0.5] * n_arms)
+    return parse_design(text.replace("'", '"'))
+
+
+def mixing_table(outcome: str = "gaussian", *, draws: int = 1000, tune: int = 200, seed: int = 20260101):
+    """Rows (stage, R-hat max over tau, worst ESS per sweep over tau, sweeps per second)."""
+    design = study_design(outcome)
+    log = simulate(design, "control", rng=seed).log
+    rows = []
+    for stage in (1, 3, 20):
+        data = ModelData.from_log(log[log.decision <= stage], design)
+        start = time.perf_counter()
+        idata = sample_fast(data, design.priors, chains=4, draws=draws, tune=tune, rng=stage, init="dispersed")
+        elapsed = time.perf_counter() - start
+        rhat = float(az.rhat(idata, var_names=["tau"])["tau"].max())
+        ess = float(az.ess(idata, var_names=["tau"])["tau"].min()) / (4 * draws)
+        rows.append((stage, rhat, ess, 4 * (draws + tune) / elapsed))
+    return rows
+
+
+def large_scale(*, size: int = 10_000, n_arms: int = 4, sweeps: int = 50, seed: int = 1):
+    """Sweeps per second and peak traced memory (MB) at ``size`` participants."""
+    design = study_design("gaussian", size=size, n_arms=n_arms)
+    log = simulate(design, "control", rng=seed).log
+    data = ModelData.from_log(log, design)
+    tracemalloc.start()
+    sampler = GibbsSampler(data, design.priors, rng=seed)
+    sampler.sweep(2)
+    start = time.perf_counter()
+    sampler.sweep(sweeps)
+    elapsed = time.perf_counter() - start
+    _, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    return len(data.y), sweeps / elapsed, peak / 2**20
+
+
+def nuts_section(fast_rows=None) -> None:
+    """PLACEHOLDER for the full engine's owner: ESS per second of PyMC NUTS relative
+    to the fast engine on the same data, printed as a ratio measured in this run.
+    ``fast_rows`` are the rows of :func:`mixing_table` (gaussian)."""
+    print("\n[full engine] NUTS ESS/s ratio: not yet measured (section to be filled in)")
+
+
+def main(argv=None) -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--quick", action="store_true", help="fewer draws (a smoke run)")
+    args = parser.parse_args(argv)
+    draws = 200 if args.quick else 1000
+    rows = {}
+    for outcome in ("gaussian", "bernoulli"):
+        rows[outcome] = mixing_table(outcome, draws=draws)
+        print(f"\nfast engine mixing, 60 x 21 x 3 study, {outcome}, 4 chains x {draws} draws from dispersed starts")
+        print(f"{'stage':>6} {'rhat_max_tau':>13} {'ess_per_sweep_min_tau':>22} {'sweeps_per_s':>13}")
+        for stage, rhat, ess, speed in rows[outcome]:
+            print(f"{stage:>6} {rhat:>13.4f} {ess:>22.3f} {speed:>13.0f}")
+    n_obs, speed, peak = large_scale(sweeps=10 if args.quick else 50)
+    print(f"\nfast engine at N = 10,000 participants, K = 4 arms, {n_obs} observations (gaussian):")
+    print(f"  sweeps per second: {speed:.1f}   peak traced memory: {peak:.0f} MB")
+    nuts_section(rows["gaussian"])
+
+
+if __name__ == "__main__":
+    main()
