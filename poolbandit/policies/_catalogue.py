@@ -202,3 +202,33 @@ KINDS: dict[str, KindInfo] = {
         summary="each participant alone, given the true population distribution (simulation only)",
     ),
 }
+
+# Horizon-aware index rules: see poolbandit.policies.horizon and .bayes_optimal.
+_FLOOR = {"p_min": (Number(0, 1), 0.02)}
+_POOLED = {
+    "sweeps": (Number(1, integer=True), 5),
+    "population_draws": (Number(1, integer=True), 4),
+    "burn_in": (Number(1, integer=True), 100),
+    "context": (Flag(), True),
+    "covariates": (Flag(), True),
+}
+_RULES = {
+    "greedy": ({}, "the arm with the highest posterior mean"),
+    "bayes-ucb": ({"c": (_NONNEG, 0.0), "quantile": (Number(0, 1, low_open=True, high_open=True), None)},
+                  "the arm with the highest posterior quantile 1 - 1/(t (log T)^c) (Bayes-UCB)"),
+    "tempered-thompson": ({"kappa": (Number(0, 1, low_open=True), 0.5)},
+                          "probability best with the posterior spread scaled by kappa"),
+    "knowledge-gradient": ({"lookahead": (Number(1, integer=True), 1)},
+                           "posterior mean plus remaining decisions times the value of information"),
+}
+for _rule, (_params, _text) in _RULES.items():
+    KINDS[f"pooled-{_rule}"] = KindInfo({**_POOLED, **_params, **_FLOOR},
+                                        summary=f"{_text}, pooled posterior, floor p_min")
+    KINDS[f"oracle-prior-{_rule}"] = KindInfo({"context": (Flag(), True), **_params, **_FLOOR}, simulation_only=True,
+                                              summary=f"{_text}, true population prior, floor p_min "
+                                                      "(simulation only)")
+KINDS["bayes-optimal"] = KindInfo(
+    {"grid": (Number(101, integer=True), 2001), "p_min": (Number(0, 1), 0.0)},
+    simulation_only=True,
+    summary="Bayes-optimal finite-horizon policy by backward induction, two arms, true prior (simulation only)",
+)

@@ -27,6 +27,15 @@ CLASSES: dict[str, str] = {
     "pooled-thompson": "poolbandit.policies.pooled:PooledThompsonPolicy",
     "complete-pooling-thompson": "poolbandit.policies.pooled:CompletePoolingThompsonPolicy",
     "oracle-prior-thompson": "poolbandit.policies.pooled:OraclePriorThompsonPolicy",
+    "pooled-greedy": "poolbandit.policies.horizon:PooledGreedyPolicy",
+    "pooled-bayes-ucb": "poolbandit.policies.horizon:PooledBayesUCBPolicy",
+    "pooled-tempered-thompson": "poolbandit.policies.horizon:PooledTemperedThompsonPolicy",
+    "pooled-knowledge-gradient": "poolbandit.policies.horizon:PooledKnowledgeGradientPolicy",
+    "oracle-prior-greedy": "poolbandit.policies.horizon:OraclePriorGreedyPolicy",
+    "oracle-prior-bayes-ucb": "poolbandit.policies.horizon:OraclePriorBayesUCBPolicy",
+    "oracle-prior-tempered-thompson": "poolbandit.policies.horizon:OraclePriorTemperedThompsonPolicy",
+    "oracle-prior-knowledge-gradient": "poolbandit.policies.horizon:OraclePriorKnowledgeGradientPolicy",
+    "bayes-optimal": "poolbandit.policies.bayes_optimal:BayesOptimalPolicy",
 }
 
 
