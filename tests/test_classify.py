@@ -1,0 +1,416 @@
+"""Classification: category probabilities, Monte Carlo errors, intervals, shares, agreement, calibration.
+
+Outside references, named per test:
+
+* ArviZ (``arviz.hdi``, ``arviz.mcse``, ``arviz.ess``) for intervals and Monte
+  Carlo standard errors (checks.md 10);
+* statsmodels (``statsmodels.stats.inter_rater.cohens_kappa``) for Cohen's
+  kappa and its standard error (checks.md 12; Cohen 1960; Fleiss, Cohen and
+  Everitt 1969);
+* scipy (``scipy.integrate.quad`` over ``scipy.stats.norm``) for exact
+  category probabilities of independent normal effects;
+* Murphy (1973) and Brier (1950) for the Brier score partition, checked on
+  forecasts where the partition is exact;
+* the calibration of an exact conjugate posterior (Cook, Gelman and Rubin
+  2006; Talts et al. 2018: draws from the true posterior are calibrated by
+  construction).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+import xarray as xr
+from scipy import integrate, stats
+
+import arviz as az
+from poolbandit.classify import (UNDETERMINED, agreement, brier_decomposition, calibrate, category_indicators,
+                                 classify, cohens_kappa, population_effects, read_intake, reliability_table,
+                                 rule_contrasts, true_categories)
+from poolbandit.errors import InputError, LogError
+from poolbandit.spec import CategorySpec
+
+ARMS = ["drill", "story", "roleplay"]
+DIMS = ("chain", "draw", "participant", "arm")
+
+
+def _effect(values, ids=None) -> xr.DataArray:
+    values = np.asarray(values, dtype=float)
+    ids = ids or [f"p{i}" for i in range(values.shape[2])]
+    return xr.DataArray(values, dims=DIMS, coords={"participant": ids, "arm": ARMS})
+
+
+RULES = (
+    CategorySpec("drill-leaning", "best", "drill", None, 0.25),
+    CategorySpec("story-over-drill", "beats", "story", "drill", 0.125),
+    CategorySpec("no-clear-preference", "within", None, None, 0.25),
+)
+
+
+@pytest.fixture(scope="module")
+def hand_built():
+    """Ten draws of two participants whose category probabilities are known by counting.
+
+    Participant A: 4 draws drill best by 0.5 (drill-leaning only); 3 draws all equal
+    (no-clear-preference only); 2 draws story 0.125 + 0.0625 above drill with range 0.1875
+    (story-over-drill AND no-clear-preference: an overlap); 1 draw matching nothing (drill ahead by exactly the margin 0.25, range 0.375).
+    Participant B: drill best by 2 in every draw. All numbers are exact binary fractions.
+    """
+    a = [[1.0, 0.5, 0.5]] * 4 + [[0.5, 0.5, 0.5]] * 3 + [[0.5, 0.6875, 0.5]] * 2 + [[0.875, 0.5, 0.625]]
+    b = [[2.0, 0.0, 0.0]] * 10
+    values = np.stack([np.array(a), np.array(b)], axis=1)[None]  # (1, 10, 2, 3)
+    return _effect(values, ["A", "B"])
+
+
+def test_category_probabilities_exact_on_hand_built_draws(hand_built):
+    """Check probabilities, exclusive probabilities, overlap and labels against counting by hand."""
+    c = classify(hand_built, RULES, threshold=0.8)
+    p = c.probabilities.set_index(["participant", "category"])
+    # per rule on its own: A 4/10, 2/10, 5/10 and 1/10 matching none
+    assert p.loc[("A", "drill-leaning"), "probability"] == 4 / 10
+    assert p.loc[("A", "story-over-drill"), "probability"] == 2 / 10
+    assert p.loc[("A", "no-clear-preference"), "probability"] == 5 / 10
+    assert p.loc[("A", UNDETERMINED), "probability"] == 1 / 10
+    # exclusive set, first matching rule in design order: the two overlapping draws go to story-over-drill
+    assert p.loc[("A", "no-clear-preference"), "exclusive_probability"] == 3 / 10
+    assert p.loc[("A", "story-over-drill"), "exclusive_probability"] == 2 / 10
+    assert p.loc[("B", "drill-leaning"), "exclusive_probability"] == 1.0
+    assert p.loc[("B", "drill-leaning"), "mc_se"] == 0.0  # every draw agrees
+    lab = c.labels.set_index("participant")
+    assert lab.loc["A", "overlap_probability"] == 2 / 10
+    assert lab.loc["A", "label"] == UNDETERMINED and lab.loc["A", "top_category"] == "drill-leaning"
+    assert lab.loc["B", "label"] == "drill-leaning"
+    assert c.overlapping
+    pair = c.overlap_pairs.set_index(["category_a", "category_b"]).loc[("story-over-drill", "no-clear-preference")]
+    assert pair["max_probability"] == 2 / 10 and pair["mean_probability"] == 1 / 10
+    # shares draw by draw: drill-leaning holds for B always and for A in draws 0-3
+    share = c.prevalence.set_index(["set", "category"]).loc[("exclusive", "drill-leaning"), "share"]
+    assert share == pytest.approx((4 * 1.0 + 6 * 0.5) / 10, abs=1e-15)
+
+
+def test_rule_boundaries_are_strict_for_margins_and_inclusive_for_within():
+    """Check the design's wording: "more than margin" is strict, "inside [-delta, delta]" is closed."""
+    values = np.array([[0.75, 0.5, 0.5], [0.5, 0.625, 0.5], [0.5, 0.5, 0.75]])  # exact binary fractions
+    truth = xr.DataArray(values, dims=("participant", "arm"), coords={"participant": ["x", "y", "z"], "arm": ARMS})
+    ind = category_indicators(truth, RULES).to_pandas()
+    assert not ind.loc["x", "drill-leaning"]  # 0.75 - 0.5 = 0.25 is not more than 0.25
+    assert not ind.loc["y", "story-over-drill"]  # 0.125 is not more than 0.125
+    assert ind.loc["z", "no-clear-preference"]  # a range of exactly 0.25 is within 0.25
+    assert true_categories(truth, RULES)["category"].tolist() == [
+        "no-clear-preference", "no-clear-preference", "no-clear-preference"]
+
+
+def test_contrasts_named_by_rules_once_each():
+    """Check that each pair of arms appears once, in the orientation a rule names first."""
+    assert rule_contrasts(RULES, ARMS) == [("drill", "story"), ("drill", "roleplay"), ("story", "roleplay")]
+    assert rule_contrasts(RULES[1:2], ARMS) == [("story", "drill")]
+
+
+@pytest.fixture(scope="module")
+def autocorrelated():
+    """Four AR(1) chains (phi = 0.9) of 5 participants' effects, so that ESS is far below the draw count."""
+    rng = np.random.default_rng(11)
+    n_chain, n_draw, n = 4, 500, 5
+    z = rng.standard_normal((n_chain, n_draw, n, 3))
+    x = np.empty_like(z)
+    x[:, 0] = z[:, 0]
+    for t in range(1, n_draw):
+        x[:, t] = 0.9 * x[:, t - 1] + np.sqrt(1 - 0.81) * z[:, t]
+    centre = np.array([[0.4, 0.0, 0.0], [0.0, 0.3, 0.0], [0.0, 0.0, 0.0], [0.1, 0.2, 0.3], [-0.3, 0.3, 0.0]])
+    return _effect(centre + 0.25 * x)
+
+
+def test_mcse_and_hdi_equal_arviz(autocorrelated):
+    """checks.md 10: the package's HDIs and Monte Carlo standard errors equal ArviZ's on the same draws.
+
+    Reference: ``arviz.hdi`` and ``arviz.mcse(method="mean")`` (the latter is sd / sqrt(ESS of the mean)).
+    Tolerance 1e-12: the same arithmetic, only floating-point reordering differs.
+    """
+    eff = autocorrelated
+    c = classify(eff, RULES, mass=0.8)
+    ind = category_indicators(eff, RULES).astype(float)
+    ref = az.mcse(xr.Dataset({"i": ind}), method="mean")["i"].to_pandas()
+    got = c.probabilities.pivot(index="participant", columns="category", values="mc_se")
+    np.testing.assert_allclose(got.loc[ref.index, ref.columns].to_numpy(), ref.to_numpy(), rtol=1e-12)
+    # the autocorrelation matters: the iid formula sqrt(p(1-p)/n) would be far too small (for probabilities
+    # that are not near 0 or 1, where a handful of matching draws carry little autocorrelation)
+    p = c.probabilities.pivot(index="participant", columns="category", values="probability")
+    iid = np.sqrt(p * (1 - p) / (4 * 500)).loc[ref.index, ref.columns].to_numpy()
+    ok = (p.loc[ref.index, ref.columns].to_numpy() > 0.05) & (p.loc[ref.index, ref.columns].to_numpy() < 0.95)
+    assert ok.sum() >= 5
+    assert np.all(got.loc[ref.index, ref.columns].to_numpy()[ok] > 1.5 * iid[ok])
+    # and the brief's form sqrt(p(1-p)/ESS) agrees up to ArviZ's ddof=1 sd: factor sqrt(n/(n-1))
+    ess = az.ess(xr.Dataset({"i": ind}), method="mean")["i"].to_pandas()
+    brief = np.sqrt(p * (1 - p) / ess).loc[ref.index, ref.columns].to_numpy()
+    np.testing.assert_allclose(brief * np.sqrt(2000 / 1999), ref.to_numpy(), rtol=1e-9)
+
+    hdi = az.hdi(xr.Dataset({"e": eff}), hdi_prob=0.8)["e"]
+    arms = c.effects[c.effects["kind"] == "arm"]
+    for row in arms.itertuples():
+        ref_lo, ref_hi = hdi.sel(participant=row.participant, arm=row.quantity).to_numpy()
+        assert (row.hdi_low, row.hdi_high) == pytest.approx((ref_lo, ref_hi), rel=1e-12, abs=1e-12)
+    diff = eff.sel(arm="story") - eff.sel(arm="roleplay")
+    dh = az.hdi(xr.Dataset({"d": diff}), hdi_prob=0.8)["d"]
+    rows = c.effects[c.effects["quantity"] == "story - roleplay"].set_index("participant")
+    np.testing.assert_allclose(rows.loc[[str(p) for p in dh["participant"].to_numpy()], ["hdi_low", "hdi_high"]],
+                               dh.to_numpy(), rtol=1e-12)
+    means = arms.pivot(index="participant", columns="quantity", values="mean")
+    np.testing.assert_allclose(means.loc[list(eff["participant"].to_numpy()), ARMS],
+                               eff.mean(("chain", "draw")).to_numpy(), rtol=1e-12)
+
+
+def test_labels_follow_threshold(autocorrelated):
+    """Check that a label is given exactly when the top exclusive probability reaches the threshold."""
+    for threshold in (0.3, 0.6, 0.95):
+        c = classify(autocorrelated, RULES, threshold=threshold)
+        lab = c.labels
+        expect = np.where(lab["top_probability"] >= threshold, lab["top_category"], UNDETERMINED)
+        assert (lab["label"].to_numpy() == expect).all()
+
+
+@pytest.mark.parametrize("bad", [{"mass": 1.0}, {"mass": 0}, {"threshold": 0.0}, {"threshold": 1.2}])
+def test_bad_options_raise_input_error(autocorrelated, bad):
+    """Check that out-of-range options name the option and the value."""
+    name, value = next(iter(bad.items()))
+    with pytest.raises(InputError, match=f"{name}: expected a number in .*got {value!r}"):
+        classify(autocorrelated, RULES, **bad)
+
+
+def _fake_posterior(beta, tau, *, draws=400, gamma=None, corr=None, coef=("drill", "story", "roleplay")):
+    post = {"beta": (("chain", "draw", "coef"), np.broadcast_to(beta, (1, draws, len(beta))).copy()),
+            "tau": (("chain", "draw", "coef"), np.broadcast_to(tau, (1, draws, len(tau))).copy())}
+    coords = {"coef": list(coef)}
+    if gamma is not None:
+        post["gamma"] = (("chain", "draw", "coef", "covariate"), np.broadcast_to(gamma, (1, draws, *np.shape(gamma))))
+        coords["covariate"] = [f"w{j}" for j in range(np.shape(gamma)[1])]
+    if corr is not None:
+        post["corr"] = (("chain", "draw", "coef", "coef_"), np.broadcast_to(corr, (1, draws, *np.shape(corr))))
+        coords["coef_"] = list(coef)
+    return xr.Dataset(post, coords=coords)
+
+
+def _p_best(means, sd, a, margin):
+    """P(X_a - max_{j != a} X_j > margin) for independent normals: one-dimensional quadrature."""
+    others = [j for j in range(len(means)) if j != a]
+    f = lambda x: stats.norm.pdf(x, means[a], sd) * np.prod([stats.norm.cdf(x - margin, means[j], sd)
+                                                             for j in others])
+    return integrate.quad(f, -np.inf, np.inf)[0]
+
+
+def _p_within(means, sd, d):
+    """P(max - min <= d) for independent normals: sum over which arm is the minimum."""
+    total = 0.0
+    for k in range(len(means)):
+        others = [j for j in range(len(means)) if j != k]
+        f = lambda x: stats.norm.pdf(x, means[k], sd) * np.prod(
+            [stats.norm.cdf(x + d, means[j], sd) - stats.norm.cdf(x, means[j], sd) for j in others])
+        total += integrate.quad(f, -np.inf, np.inf)[0]
+    return total
+
+
+def test_population_shares_match_exact_normal_probabilities():
+    """Check the population-model shares against exact probabilities of independent normal effects.
+
+    With beta and tau fixed in every draw, a new participant's arm effects are independent
+    N(beta_k, tau^2); the probability of each rule is a one-dimensional integral computed with
+    scipy.integrate.quad. Tolerance: 4 Monte Carlo standard errors of the simulated share
+    (400 draws x 200 new participants).
+    """
+    beta = np.array([0.3, 0.1, 0.0])
+    rules = (CategorySpec("drill-leaning", "best", "drill", None, 0.2),
+             CategorySpec("story-leaning", "best", "story", None, 0.2),
+             CategorySpec("flat", "within", None, None, 0.3))
+    pop = population_effects(_fake_posterior(beta, np.full(3, 0.4)), ARMS, n_new=200, rng=5)
+    eff = _effect(np.zeros((1, 4, 1, 3)))
+    c = classify(eff, rules, population_effect=pop)
+    shares = c.prevalence.query("source == 'new participant (population model)' and set == 'marginal'")
+    shares = shares.set_index("category")
+    exact = {"drill-leaning": _p_best(beta, 0.4, 0, 0.2), "story-leaning": _p_best(beta, 0.4, 1, 0.2),
+             "flat": _p_within(beta, 0.4, 0.3)}
+    for name, value in exact.items():
+        assert abs(shares.loc[name, "share"] - value) < 4 * shares.loc[name, "mc_se"], name
+
+
+def test_population_effects_use_covariates_and_correlation():
+    """Check the moments of simulated new participants: mean beta + Gamma E[w], covariance
+    D R D + Gamma Var(w) Gamma' (normal theory, common practice).
+
+    Tolerance: 5 standard errors of a sample mean / covariance of 400 x 100 = 40000 draws.
+    """
+    beta = np.array([1.0, 0.0, -1.0])
+    tau = np.array([0.5, 0.2, 0.3])
+    gamma = np.array([[0.4], [0.0], [-0.2]])
+    corr = np.array([[1.0, 0.6, 0.0], [0.6, 1.0, 0.0], [0.0, 0.0, 1.0]])
+    w = np.array([[-1.0], [0.0], [2.0]])  # observed covariates: mean 1/3, variance 14/9
+    pop = population_effects(_fake_posterior(beta, tau, gamma=gamma, corr=corr), ARMS, covariates=w, rng=9)
+    x = pop.to_numpy().reshape(-1, 3)
+    mean_w, var_w = w.mean(), w.var()
+    cov = np.diag(tau) @ corr @ np.diag(tau) + gamma @ gamma.T * var_w
+    se_mean = np.sqrt(np.diag(cov) / len(x))
+    np.testing.assert_array_less(np.abs(x.mean(axis=0) - (beta + gamma[:, 0] * mean_w)), 5 * se_mean)
+    se_cov = np.sqrt((cov ** 2 + np.outer(np.diag(cov), np.diag(cov))) / len(x))
+    np.testing.assert_array_less(np.abs(np.cov(x.T) - cov), 5 * se_cov)
+
+
+# --------------------------------------------------------------------------
+# Agreement (checks.md 12)
+# --------------------------------------------------------------------------
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_kappa_matches_statsmodels(seed):
+    """checks.md 12: Cohen's kappa, its large-sample SE and 95% interval equal statsmodels' cohens_kappa.
+
+    Reference: statsmodels.stats.inter_rater.cohens_kappa (Fleiss, Cohen and Everitt 1969 variance).
+    Tables: seeded random counts, one with an empty row. Tolerance 1e-12: same formula, reordered sums.
+    """
+    from statsmodels.stats.inter_rater import cohens_kappa as sm_kappa
+
+    rng = np.random.default_rng(seed)
+    table = rng.integers(0, 12, size=(4, 4)) + np.diag(rng.integers(5, 20, size=4))
+    if seed == 2:
+        table[1] = 0
+    ours = cohens_kappa(table)
+    ref = sm_kappa(table)
+    assert ours.kappa == pytest.approx(ref["kappa"], abs=1e-12)
+    assert ours.se == pytest.approx(ref["std_kappa"], abs=1e-12)
+    assert (ours.low, ours.high) == pytest.approx((ref["kappa_low"], ref["kappa_upp"]), abs=1e-12)
+
+
+def test_agreement_table_and_kappa_from_labels(hand_built):
+    """Check that the confusion table counts labels against intake answers (pandas crosstab as reference)
+    and that kappa is statsmodels' kappa of that table."""
+    from statsmodels.stats.inter_rater import cohens_kappa as sm_kappa
+
+    rng = np.random.default_rng(4)
+    n = 40
+    kinds = rng.integers(0, 3, size=n)
+    centre = np.zeros((n, 3))
+    centre[kinds == 0, 0] = 3.0  # drill-leaning
+    centre[kinds == 1, 1] = 3.0  # story over drill
+    values = centre[None, None] + 0.01 * rng.standard_normal((1, 20, n, 3))
+    ids = [f"q{i}" for i in range(n)]
+    c = classify(_effect(values, ids), RULES)
+    names = [r.name for r in RULES]
+    flip = rng.random(n) < 0.3
+    intake_codes = np.where(flip, rng.integers(0, 3, size=n), kinds)
+    intake = pd.Series(np.asarray(names, dtype=object)[intake_codes], index=ids)
+    intake.iloc[0] = None  # one missing answer
+    a = agreement(c, intake)
+    labels = c.labels.set_index("participant")["label"]
+    ref = pd.crosstab(labels.loc[ids[1:]], intake.iloc[1:]).reindex(index=names, columns=names, fill_value=0)
+    np.testing.assert_array_equal(a.table.loc[names, names].to_numpy(), ref.to_numpy())
+    assert a.n_missing == 1
+    assert a.kappa.kappa == pytest.approx(sm_kappa(ref.to_numpy())["kappa"], abs=1e-12)
+
+
+def test_read_intake_names_row_column_and_value(tmp_path):
+    """Check that bad intake files raise LogError naming file, row, column and value."""
+    names = [r.name for r in RULES]
+    good = tmp_path / "intake.csv"
+    good.write_text("participant,answer\nA,drill-leaning\nB,\n", encoding="utf-8")
+    s = read_intake(good, "answer", names)
+    assert s["A"] == "drill-leaning" and pd.isna(s["B"])
+    bad = tmp_path / "bad.csv"
+    bad.write_text("participant,answer\nA,drill-leaning\nB,chatty\nB,flat\n", encoding="utf-8")
+    with pytest.raises(LogError, match=r'(?s)bad.csv.*row 2, column answer: expected one of .*got "chatty"') as err:
+        read_intake(bad, "answer", names)
+    assert 'row 3, column participant: duplicate participant, got "B"' in str(err.value)
+    with pytest.raises(LogError, match='missing column "answer2"'):
+        read_intake(good, "answer2", names)
+
+
+# --------------------------------------------------------------------------
+# Calibration (checks.md 11)
+# --------------------------------------------------------------------------
+def test_murphy_partition_is_exact_for_discrete_forecasts():
+    """Murphy (1973): with forecasts taking one value per bin, BS = REL - RES + UNC exactly.
+
+    Reference values are recomputed independently with a pandas groupby over the distinct forecasts.
+    Tolerance 1e-12: the same sums in another order.
+    """
+    rng = np.random.default_rng(3)
+    values = np.arange(10) / 10 + 0.05
+    p = rng.choice(values, size=2000)
+    o = (rng.random(2000) < np.clip(p + 0.1, 0, 1)).astype(float)  # a biased forecaster: REL > 0
+    d = brier_decomposition(p, o)
+    assert d["within_bin"] == pytest.approx(0.0, abs=1e-12)
+    g = pd.DataFrame({"p": p, "o": o}).groupby("p")["o"].agg(["mean", "size"])
+    base = o.mean()
+    rel = np.sum(g["size"] * (g.index.to_numpy() - g["mean"]) ** 2) / len(p)
+    res = np.sum(g["size"] * (g["mean"] - base) ** 2) / len(p)
+    assert d["reliability"] == pytest.approx(rel, abs=1e-12)
+    assert d["resolution"] == pytest.approx(res, abs=1e-12)
+    assert d["uncertainty"] == pytest.approx(base * (1 - base), abs=1e-12)
+    assert d["brier"] == pytest.approx(np.mean((p - o) ** 2), abs=1e-12)
+    assert d["reliability"] > 0.005  # the bias of 0.1 shows (expected about 0.01)
+
+
+def test_climatology_forecast_has_no_reliability_or_resolution():
+    """Brier (1950), Murphy (1973): always forecasting the base rate gives REL = RES = 0 and BS = UNC.
+
+    A categorical forecast's score is the sum of its categories' binary scores.
+    """
+    rng = np.random.default_rng(8)
+    cat = rng.choice(3, size=500, p=[0.5, 0.3, 0.2])
+    o = np.eye(3)[cat]
+    p = np.broadcast_to(o.mean(axis=0), o.shape)
+    d = brier_decomposition(p, o)
+    assert d["reliability"] == pytest.approx(0.0, abs=1e-15)
+    assert d["resolution"] == pytest.approx(0.0, abs=1e-15)
+    assert d["brier"] == pytest.approx(d["uncertainty"], abs=1e-12)
+    per = sum(brier_decomposition(p[:, j], o[:, j])["brier"] for j in range(3))
+    assert d["brier"] == pytest.approx(per, abs=1e-12)
+
+
+def _conjugate_study(rng, n, shrink=1.0):
+    """True effects from N(m0, s0^2); one noisy mean per arm; draws from the exact normal posterior.
+
+    ``shrink`` < 1 makes the posterior overconfident (sd multiplied by ``shrink``).
+    """
+    m0, s0, se = np.array([0.1, 0.0, 0.0]), 0.3, 0.2
+    theta = m0 + s0 * rng.standard_normal((n, 3))
+    ybar = theta + se * rng.standard_normal((n, 3))
+    prec = 1 / s0**2 + 1 / se**2
+    mean = (m0 / s0**2 + ybar / se**2) / prec
+    draws = mean + shrink * rng.standard_normal((1, 2000, n, 3)) / np.sqrt(prec)
+    ids = [f"c{i:03d}" for i in range(n)]
+    truth = xr.DataArray(theta, dims=("participant", "arm"), coords={"participant": ids, "arm": ARMS})
+    return _effect(draws, ids), truth
+
+
+def test_exact_posterior_is_calibrated_and_overconfidence_is_caught():
+    """checks.md 11 (Brier 1950; Murphy 1973): draws from the exact conjugate posterior give calibrated
+    category probabilities and 90% intervals that cover the truth 90% of the time; a posterior with
+    half the correct spread does not.
+
+    Bounds: coverage within 3.5 binomial SEs of 0.9 over 900 participant-arm pairs (SE 0.010). With
+    300 participants and 4 categories, binning noise alone gives a calibrated forecaster a reliability
+    term of about sum over categories and bins of f(1-f)/N (measured 0.016 to 0.018 over seeds 21, 23,
+    24), so the bound is 0.03; the overconfident posterior measures 0.052 with coverage 0.59.
+    """
+    rules = (CategorySpec("drill-leaning", "best", "drill", None, 0.1),
+             CategorySpec("story-leaning", "best", "story", None, 0.1),
+             CategorySpec("flat", "within", None, None, 0.2))
+    eff, truth = _conjugate_study(np.random.default_rng(21), 300)
+    good = calibrate(classify(eff, rules), truth).summary()
+    eff, truth = _conjugate_study(np.random.default_rng(22), 300, shrink=0.5)
+    bad = calibrate(classify(eff, rules), truth).summary()
+    se = np.sqrt(0.9 * 0.1 / 900)
+    assert abs(good["coverage"] - 0.9) < 3.5 * se
+    assert good["reliability"] < 0.03
+    assert bad["coverage"] < 0.8
+    assert bad["reliability"] > 2 * good["reliability"]
+    assert good["brier"] == pytest.approx(good["reliability"] - good["resolution"] + good["uncertainty"]
+                                          + good["within_bin"], abs=1e-12)
+
+
+def test_reliability_table_counts_and_frequencies():
+    """Check the binned table against numpy histogram counts and per-bin means (numpy as reference)."""
+    rng = np.random.default_rng(2)
+    p = rng.random(300)
+    o = (rng.random(300) < p).astype(float)
+    t = reliability_table(p, o, bins=5)
+    counts, _ = np.histogram(p, bins=np.linspace(0, 1, 6))
+    np.testing.assert_array_equal(t["n"].to_numpy(), counts[counts > 0])
+    k = np.minimum((p * 5).astype(int), 4)
+    np.testing.assert_allclose(t["observed"], [o[k == j].mean() for j in t["bin"]], rtol=1e-12)
