@@ -20,6 +20,8 @@ the cdf), in chunks of rows so memory stays bounded.
 
 from __future__ import annotations
 
+from functools import lru_cache
+
 import numpy as np
 from scipy.special import ndtr, ndtri
 
@@ -34,7 +36,7 @@ def _levels(nodes: int, tail: float) -> np.ndarray:
 
 
 def prob_best_normal(mean: np.ndarray, sd: np.ndarray, *, nodes: int = 16, tail: float = 1e-9,
-                     chunk: int = 4096) -> np.ndarray:
+                     chunk: int = 512) -> np.ndarray:
     """Probability that each arm has the largest value, independent normal arms.
 
     Parameters
@@ -46,9 +48,9 @@ def prob_best_normal(mean: np.ndarray, sd: np.ndarray, *, nodes: int = 16, tail:
         arm (so narrow and wide arms are both resolved).
     tail : float, default=1e-9
         Probability left out in each tail of every arm.
-    chunk : int, default=4096
-        Rows processed at a time (bounds the working memory to about
-        ``chunk * K * K * nodes`` floats).
+    chunk : int, default=512
+        Rows processed at a time; the working memory, about
+        ``4 * chunk * K * K * nodes`` floats, is allocated once per call.
 
     Returns
     -------
@@ -60,48 +62,66 @@ def prob_best_normal(mean: np.ndarray, sd: np.ndarray, *, nodes: int = 16, tail:
     :math:`P(k\\ \\text{best}) = \\int \\prod_{j\\ne k}\\Phi((x-\\mu_j)/s_j)\\,
     d\\Phi((x-\\mu_k)/s_k)`, computed on the merged, sorted grid of every arm's
     quantile nodes by the trapezoid rule in :math:`F_k` (a Stieltjes sum), the
-    same rule as :func:`~poolbandit.policies._probability.prob_best`. Each
-    grid interval moves every cdf by at most about ``1 / nodes``; the error is
-    of second order in that and is spread by renormalising the row. The
-    returned table is then exactly the distribution the arm is drawn from.
+    same rule and nodes as :func:`~poolbandit.policies._probability.prob_best`
+    (which this function reproduces to rounding for ``scipy.stats.norm``).
+    Each grid interval moves every cdf by at most about ``1 / nodes``; the
+    error is of second order in that and is spread by renormalising the row.
+    The returned table is then exactly the distribution the arm is drawn from.
     """
     mean = np.asarray(mean, dtype=float)
     sd = np.maximum(np.asarray(sd, dtype=float), _SD_FLOOR)
     n, k = mean.shape
     out = np.empty((n, k))
     z = _levels(nodes, tail)
-    for lo in range(0, n, chunk):
-        hi = min(n, lo + chunk)
-        out[lo:hi] = _prob_best_chunk(mean[lo:hi], sd[lo:hi], z)
+    c = max(1, min(chunk, n))
+    m = k * nodes
+    work = {"grid": np.empty((c, m)), "cdf": np.empty((c, k, m)), "pre": np.empty((c, k, m)),
+            "suf": np.empty((c, k, m)), "d": np.empty((c, k, m - 1))}
+    for lo in range(0, n, c):
+        hi = min(n, lo + c)
+        out[lo:hi] = _prob_best_chunk(mean[lo:hi], sd[lo:hi], z, work)
     return out
 
 
-def _prob_best_chunk(mean: np.ndarray, sd: np.ndarray, z: np.ndarray) -> np.ndarray:
+def _prob_best_chunk(mean: np.ndarray, sd: np.ndarray, z: np.ndarray, work: dict) -> np.ndarray:
+    """One chunk of :func:`prob_best_normal`, written into preallocated buffers."""
     n, k = mean.shape
-    grid = (mean[:, :, None] + sd[:, :, None] * z).reshape(n, -1)
+    g = len(z)
+    grid = work["grid"][:n]
+    np.multiply(sd[:, :, None], z, out=grid.reshape(n, k, g))
+    grid.reshape(n, k, g)[...] += mean[:, :, None]
     grid.sort(axis=1)
-    cdf = ndtr((grid[:, None, :] - mean[:, :, None]) / sd[:, :, None])  # (n, K, M)
-    d_cdf = np.diff(cdf, axis=-1)  # (n, K, M-1)
-    # products of every other arm's cdf by prefix and suffix products over arms
-    prefix = np.ones_like(cdf)
-    suffix = np.ones_like(cdf)
+    cdf = work["cdf"][:n]  # (n, K, M): every arm's cdf on the merged grid
+    np.subtract(grid[:, None, :], mean[:, :, None], out=cdf)
+    cdf /= sd[:, :, None]
+    ndtr(cdf, out=cdf)
+    # product of every other arm's cdf, by prefix and suffix products over arms
+    pre, suf = work["pre"][:n], work["suf"][:n]
+    pre[:, 0] = 1.0
+    suf[:, k - 1] = 1.0
     for j in range(1, k):
-        prefix[:, j] = prefix[:, j - 1] * cdf[:, j - 1]
-        suffix[:, k - 1 - j] = suffix[:, k - j] * cdf[:, k - j]
-    others = prefix * suffix  # (n, K, M)
-    avg = 0.5 * (others[..., 1:] + others[..., :-1])
-    out = np.einsum("nkm,nkm->nk", d_cdf, avg)
+        np.multiply(pre[:, j - 1], cdf[:, j - 1], out=pre[:, j])
+        np.multiply(suf[:, k - j], cdf[:, k - j], out=suf[:, k - 1 - j])
+    pre *= suf
+    d_cdf = work["d"][:n]
+    np.subtract(cdf[..., 1:], cdf[..., :-1], out=d_cdf)
+    pair = suf[..., :-1]
+    np.add(pre[..., 1:], pre[..., :-1], out=pair)  # twice the trapezoid average
+    out = np.einsum("nkm,nkm->nk", d_cdf, pair)
     np.clip(out, 0.0, None, out=out)
     out /= out.sum(axis=1, keepdims=True)
     return out
 
 
+@lru_cache(maxsize=8)
 def _qmc_normals(points: int, dim: int) -> np.ndarray:
     """A fixed scrambled Sobol point set mapped to standard normals (same on every machine)."""
     from scipy.stats import qmc
 
     u = qmc.Sobol(dim, scramble=True, seed=20240601).random(points)
-    return ndtri(np.clip(u, 1e-12, 1 - 1e-12))
+    z = ndtri(np.clip(u, 1e-12, 1 - 1e-12))
+    z.flags.writeable = False  # shared by every call (cached)
+    return z
 
 
 def prob_best_correlated(mean: np.ndarray, cov: np.ndarray, *, points: int = 1024,
@@ -138,7 +158,14 @@ def prob_best_correlated(mean: np.ndarray, cov: np.ndarray, *, points: int = 102
     for lo in range(0, n, chunk):
         hi = min(n, lo + chunk)
         chol = np.linalg.cholesky(cov[lo:hi] + jitter)
-        x = mean[lo:hi, None, :] + np.einsum("nkl,ml->nmk", chol, zs)
-        best = np.argmax(x, axis=2)
-        out[lo:hi] = np.stack([(best == j).mean(axis=1) for j in range(k)], axis=1)
+        x = chol @ zs.T  # (n, K, M): mean-free arm values at every point
+        x += mean[lo:hi, :, None]
+        top = x[:, 0].copy()
+        best = np.zeros(top.shape, dtype=np.int64)
+        for j in range(1, k):  # running maximum over arms (ties: lowest index, as argmax)
+            better = x[:, j] > top
+            np.copyto(top, x[:, j], where=better)
+            best[better] = j
+        best += (k * np.arange(hi - lo))[:, None]
+        out[lo:hi] = np.bincount(best.ravel(), minlength=(hi - lo) * k).reshape(hi - lo, k) / points
     return out

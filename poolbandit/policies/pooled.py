@@ -254,6 +254,11 @@ class PooledThompsonPolicy(Policy):
         """The warm-started :class:`~poolbandit.models.gibbs.GibbsSampler` (None before the first fit)."""
         return self._sampler
 
+    @property
+    def retained_draws(self) -> list[_PopulationDraw]:
+        """The population draws the current probabilities average over (after the last fit)."""
+        return list(self._draws)
+
     def _fit(self, rng: np.random.Generator | None) -> None:
         """Update the posterior with the rewards that arrived since the last fit."""
         if not self._stale and self._sampler is not None:
