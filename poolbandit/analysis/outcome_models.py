@@ -156,43 +156,48 @@ def hierarchical_available() -> bool:
     return hasattr(_fit, "fit")
 
 
-def hierarchical_outcome_model(*, engine: str = "fast", draws: int = 200, rng: RngLike = None,
-                               fit_kwargs: dict | None = None) -> OutcomeModel:
+def hierarchical_outcome_model(*, engine: str = "fast", chains: int = 2, draws: int = 200, tune: int = 200,
+                               keep: int = 200, rng: RngLike = None, fit_kwargs: dict | None = None) -> OutcomeModel:
     """The hierarchical model's posterior predictions (:func:`poolbandit.models.fit.fit`).
 
     Parameters
     ----------
     engine : {"fast", "full"}, default="fast"
-    draws : int, default=200
+    chains, draws, tune : int, default=2, 200, 200
+        Passed to ``fit``: enough for posterior means and a 95 percent interval
+        of an average over participants (the Gibbs sampler mixes in a few sweeps).
+    keep : int, default=200
         Posterior draws kept (evenly thinned) for the model-based rows.
     rng : Generator, int or None
         Seeds the sampler.
     fit_kwargs : dict, optional
-        Passed on to ``fit`` (copied).
+        More arguments for ``fit`` (copied).
 
     Returns
     -------
     callable
         ``model(log, design) -> OutcomePredictions`` with posterior draws.
+        The prediction of arm ``k`` at a decision is ``x(k, context)' theta_i``
+        (on the probability scale for a bernoulli outcome), one value per draw.
     """
     g = as_generator(rng)
 
     def model(log: pd.DataFrame, design) -> OutcomePredictions:
         from ..models.fit import fit
 
-        kwargs = dict(fit_kwargs or {})
-        kwargs.setdefault("engine", engine)
-        try:
-            idata = fit(log, design, rng=g, **kwargs)
-        except TypeError:  # a fit without an rng argument
-            idata = fit(log, design, **kwargs)
+        kwargs = {"engine": engine, "chains": chains, "draws": draws, "tune": tune, **dict(fit_kwargs or {})}
+        data = log
+        if "propensity" in log.columns and log["propensity"].isna().all():
+            # a log without propensities: the model does not use them; placeholders pass validation
+            data = log.drop(columns=[c for c in log.columns if c.startswith("prob_")]).assign(propensity=1.0)
+        idata = fit(data, design, rng=g, **kwargs)
         post = idata.posterior if hasattr(idata, "posterior") else idata
         theta = post["theta"]
         parts = [str(v) for v in theta["participant"].to_numpy()]
         t = theta.transpose("chain", "draw", "participant", "coef").to_numpy()
         t = t.reshape(-1, t.shape[2], t.shape[3])  # (S, N, P)
-        keep = np.unique(np.linspace(0, len(t) - 1, min(draws, len(t))).round().astype(int))
-        t = t[keep]
+        idx = np.unique(np.linspace(0, len(t) - 1, min(keep, len(t))).round().astype(int))
+        t = t[idx]
         code = pd.Index(parts).get_indexer(log["participant"].astype(str))
         if (code < 0).any():
             raise ValueError("the posterior lacks some participants of the log")
