@@ -1,0 +1,271 @@
+"""Horizon-aware pooled policies against pooled Thompson sampling, tuned classic policies and the Bayes-optimal limit.
+
+Every policy of a scenario runs on the same simulated populations and the
+same pre-drawn environment streams (common random numbers); ratios of mean
+cumulative regret per participant are printed with delta-method standard
+errors over the paired replicates (``ratio_se`` of ``pooling_regret.py``).
+
+Scenarios (gaussian rewards, noise sd 1, adherence 1, no dropout, one wave):
+
+* A: N = 60, K = 3, T = 21, arm means (0, 0.3, -0.2), heterogeneity 0.5.
+  Targets: best horizon-aware pooled rule <= 0.85 x best tuned classic and
+  <= 0.80 x pooled Thompson.
+* D: as A with heterogeneity 0.15. Target <= 0.30 x best tuned classic.
+* E: as A with heterogeneity 1.0. Target <= 1.05 x best tuned classic.
+* F: N = 80, K = 4, T = 28, all arm means 0, heterogeneity 0.4. Target <= 1.05 x best tuned classic.
+* A2: two-arm A (arm means (0, 0.3)). Targets: oracle-prior lookahead rule
+  <= 1.03 x Bayes-optimal, best pooled rule <= 1.25 x Bayes-optimal; the
+  Bayes-optimal regret of the backward induction is checked against its
+  simulation on the same replicates.
+
+The best tuned classic policy is the one with the smallest mean regret among
+greedy (epsilon 0), epsilon-greedy (0.05, 0.1) and UCB1 with c in {0.1, 0.25,
+0.5, 1.0}, chosen on the same replicates (optimistic for the classic side).
+"Best horizon-aware pooled" is likewise the best of the pooled index rules
+with their default floor ``p_min = 0.02``; the same comparison with
+``p_min = 0`` is printed as well, with the cost of the floor.
+
+Beside regret: best-arm identification at the end (the arm the policy would
+exploit is the participant's true best) and, in scenario A, the Brier score
+of the category probabilities (``poolbandit.classify`` on each policy's final
+posterior ``effect_draws``; the rules are "arm k best by more than 0.1" and
+"no arm beats another by more than 0.1").
+
+Usage: ``python benchmarks/horizon_policies.py [--replicates R] [--seed S] [--workers W] [--only A,D,E,F,A2]``
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import time
+from concurrent.futures import ProcessPoolExecutor
+from pathlib import Path
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+from pooling_regret import ratio_se, scenario_design  # noqa: E402  (another benchmark's scenario helpers)
+
+from poolbandit._random import spawn  # noqa: E402
+from poolbandit.simulation import draw_population, draw_streams, replicate_metrics, run_policy  # noqa: E402
+from poolbandit.spec import parse_design  # noqa: E402
+
+__all__: list[str] = []
+
+CLASSIC = {
+    "greedy": 'kind = "epsilon-greedy"\nepsilon = 0.0',
+    "eps-005": 'kind = "epsilon-greedy"\nepsilon = 0.05',
+    "eps-010": 'kind = "epsilon-greedy"\nepsilon = 0.1',
+    "ucb1-c010": 'kind = "ucb1"\nc = 0.1',
+    "ucb1-c025": 'kind = "ucb1"\nc = 0.25',
+    "ucb1-c050": 'kind = "ucb1"\nc = 0.5',
+    "ucb1-c100": 'kind = "ucb1"\nc = 1.0',
+}
+POOLED = {
+    "pooled-thompson": 'kind = "pooled-thompson"',
+    "pooled-greedy": 'kind = "pooled-greedy"',
+    "pooled-bayes-ucb": 'kind = "pooled-bayes-ucb"',
+    "pooled-tempered-k050": 'kind = "pooled-tempered-thompson"\nkappa = 0.5',
+    "pooled-kg": 'kind = "pooled-knowledge-gradient"',
+    "pooled-kg-lookahead": 'kind = "pooled-knowledge-gradient"\nlookahead = 40',
+}
+FLOORLESS = {  # the cost of the floor: the same rules with p_min = 0
+    "pooled-greedy-p0": 'kind = "pooled-greedy"\np_min = 0.0',
+    "pooled-kg-lookahead-p0": 'kind = "pooled-knowledge-gradient"\nlookahead = 40\np_min = 0.0',
+}
+ORACLE = {
+    "oracle-prior-thompson": 'kind = "oracle-prior-thompson"',
+    "oracle-prior-greedy": 'kind = "oracle-prior-greedy"',
+    "oracle-prior-bayes-ucb": 'kind = "oracle-prior-bayes-ucb"',
+    "oracle-prior-tempered-k050": 'kind = "oracle-prior-tempered-thompson"\nkappa = 0.5',
+    "oracle-prior-kg": 'kind = "oracle-prior-knowledge-gradient"',
+    "oracle-prior-kg-lookahead": 'kind = "oracle-prior-knowledge-gradient"\nlookahead = 40',
+    "oracle-prior-kg-lookahead-p0": 'kind = "oracle-prior-knowledge-gradient"\nlookahead = 40\np_min = 0.0',
+}
+#: pooled rules whose final posterior is classified (scenario A)
+BRIER = ["pooled-thompson", "pooled-greedy", "pooled-bayes-ucb", "pooled-tempered-k050", "pooled-kg-lookahead"]
+HORIZON_RULES = [n for n in POOLED if n != "pooled-thompson"]
+
+
+def _policies_toml(table: dict[str, str]) -> str:
+    return "\n".join(f"[policies.{name}]\n{body}" for name, body in table.items())
+
+
+def design_text(*, arms, means, sd: float, size: int, horizon: int, policies: dict[str, str]) -> str:
+    """A scenario design (adherence 1, no dropout) with the given policies and the benchmark's categories."""
+    cats = "\n".join(f'[[categories]]\nname = "{a}-best"\nbest = "{a}"\nmargin = 0.1' for a in arms)
+    return f"""
+[study]
+arms = {list(arms)!r}
+horizon = {horizon}
+[population]
+size = {size}
+arm_means = {list(means)!r}
+arm_sd = {[sd] * len(arms)!r}
+noise_sd = 1.0
+{_policies_toml(policies)}
+{cats}
+[[categories]]
+name = "no-clear-preference"
+within = 0.1
+""".replace("'", '"')
+
+
+def scenario(key: str, *, size: int | None = None, replicates_policies: dict[str, str] | None = None):
+    """(design, policy specs) of scenario ``key``; A, D and E reuse ``pooling_regret.scenario_design``."""
+    table = replicates_policies or {**CLASSIC, **POOLED, **FLOORLESS, **ORACLE}
+    arms3 = ["drill", "story", "roleplay"]
+    if key in ("A", "D", "E"):
+        sd = {"A": 0.5, "D": 0.15, "E": 1.0}[key]
+        design = scenario_design(sd, size=size or 60, horizon=21)
+        specs = parse_design(design_text(arms=arms3, means=[0.0, 0.3, -0.2], sd=sd, size=design.population.size,
+                                         horizon=21, policies=table))
+        return design, specs
+    if key == "F":
+        text = design_text(arms=["drill", "story", "roleplay", "quiz"], means=[0.0] * 4, sd=0.4, size=size or 80,
+                           horizon=28, policies=table)
+    elif key == "A2":
+        table = {**table, "bayes-optimal": 'kind = "bayes-optimal"'}
+        text = design_text(arms=["drill", "story"], means=[0.0, 0.3], sd=0.5, size=size or 60, horizon=21,
+                           policies=table)
+    else:
+        raise ValueError(f"unknown scenario {key!r}")
+    design = parse_design(text)
+    return design, design
+
+
+def run_replicate(key: str, seed, *, size: int | None = None, policies: dict[str, str] | None = None,
+                  brier: tuple[str, ...] = ()) -> dict[str, dict[str, float]]:
+    """Every policy of scenario ``key`` on one population and one set of streams (common random numbers)."""
+    design, specs = scenario(key, size=size, replicates_policies=policies)
+    g_pop, g_env, g_pol = spawn(seed, 3)
+    pop = draw_population(design, g_pop)
+    streams = draw_streams(design, pop.size, g_env)
+    names = list(specs.policies)
+    seeds = spawn(g_pol, len(names) + 1)
+    out = {}
+    for j, name in enumerate(names):
+        res = run_policy(design, specs.policy(name), pop, streams, seeds[j])
+        m = replicate_metrics(res)
+        row = {"regret": m["regret"], "identified": m["best_arm_identified"]}
+        if name in brier:
+            row["brier"] = _brier(res, specs, seeds[-1])
+        out[name] = row
+    return out
+
+
+def _brier(res, specs, rng) -> float:
+    from poolbandit.classify import calibrate, classify, true_effects
+
+    pop = res.population
+    effect = res.policy.effect_draws(list(pop.ids), 200, spawn(rng, 1)[0])
+    cal = calibrate(classify(effect, specs.categories), true_effects(pop))
+    return float(cal.brier()["brier"])
+
+
+def collect(key: str, replicates: int, seed: int, workers: int, **kw) -> dict[str, dict[str, np.ndarray]]:
+    """Run ``replicates`` replicates (in ``workers`` processes); values[name][metric] are arrays over replicates."""
+    seeds = spawn(seed, replicates)
+    if workers > 1:
+        with ProcessPoolExecutor(workers) as ex:
+            rows = list(ex.map(_task, [(key, s, kw) for s in seeds]))
+    else:
+        rows = [_task((key, s, kw)) for s in seeds]
+    names = list(rows[0])
+    return {n: {m: np.array([r[n][m] for r in rows]) for m in rows[0][n]} for n in names}
+
+
+def _task(args):
+    key, s, kw = args
+    return run_replicate(key, s, **kw)
+
+
+def _fmt(v: np.ndarray) -> str:
+    return f"{v.mean():7.3f} (se {v.std(ddof=1) / np.sqrt(len(v)):.3f})"
+
+
+def report(key: str, res: dict[str, dict[str, np.ndarray]], targets: dict[str, float]) -> dict[str, float]:
+    """Print the table and the target ratios; return the measured ratios."""
+    n_rep = len(next(iter(res.values()))["regret"])
+    print(f"\n== Scenario {key} ({n_rep} replicates) ==")
+    has_brier = any("brier" in v for v in res.values())
+    print(f"  {'policy':<30} {'regret':>20} {'best-arm identified':>22}" + ("   Brier" if has_brier else ""))
+    for name, v in res.items():
+        extra = f"   {_fmt(v['brier'])}" if "brier" in v else ""
+        print(f"  {name:<30} {_fmt(v['regret'])} {_fmt(v['identified'])}{extra}")
+    reg = {n: v["regret"] for n, v in res.items()}
+    classic = min((n for n in CLASSIC if n in reg), key=lambda n: reg[n].mean())
+    best = min((n for n in HORIZON_RULES if n in reg), key=lambda n: reg[n].mean())
+    out = {}
+    print(f"  best tuned classic: {classic}; best horizon-aware pooled rule (p_min 0.02): {best}")
+    pairs = [("classic", classic), ("pooled-thompson", "pooled-thompson")]
+    for label, ref in pairs:
+        if ref not in reg:
+            continue
+        r, se = ratio_se(reg[best], reg[ref])
+        out[label] = r
+        t = targets.get(label)
+        note = f"  target <= {t}: {'met' if r <= t else 'NOT met'}" if t else ""
+        print(f"  {best} / {ref} = {r:.3f} (se {se:.3f}){note}")
+    floorless = [n for n in FLOORLESS if n in reg]
+    if floorless:
+        best0 = min(floorless, key=lambda n: reg[n].mean())
+        r, se = ratio_se(reg[best0], reg[classic])
+        out["classic_p0"] = r
+        print(f"  with p_min = 0: {best0} / {classic} = {r:.3f} (se {se:.3f})")
+        for n in floorless:
+            base = n[:-3]
+            diff = reg[base] - reg[n]
+            print(f"  cost of the floor p_min = 0.02 for {base}: {diff.mean():+.3f} regret per participant "
+                  f"(se {diff.std(ddof=1) / np.sqrt(len(diff)):.3f}; {reg[base].mean() / reg[n].mean() - 1:+.1%})")
+    if "bayes-optimal" in reg:
+        bo = reg["bayes-optimal"]
+        for n in ["oracle-prior-kg-lookahead", "oracle-prior-kg-lookahead-p0", best, "pooled-thompson", classic]:
+            r, se = ratio_se(reg[n], bo)
+            t = {"oracle-prior-kg-lookahead": 1.03, best: 1.25}.get(n)
+            note = f"  target <= {t}: {'met' if r <= t else 'NOT met'}" if t else ""
+            print(f"  {n} / bayes-optimal = {r:.3f} (se {se:.3f}){note}")
+        print("  every policy / bayes-optimal: " + ", ".join(f"{n} {reg[n].mean() / bo.mean():.3f}" for n in reg))
+    return out
+
+
+def bayes_optimal_check(res, design) -> None:
+    """The backward induction's Bayes regret against its own simulation on the replicates."""
+    from poolbandit.policies.bayes_optimal import solve_two_arm
+
+    pop = design.population
+    sol = solve_two_arm(design.study.horizon, pop.arm_means, pop.arm_sd, pop.noise_sd)
+    v = res["bayes-optimal"]["regret"]
+    se = v.std(ddof=1) / np.sqrt(len(v))
+    print(f"  Bayes-optimal regret: backward induction {sol.regret(pop.arm_means):.4f}, simulated {v.mean():.4f} "
+          f"(se {se:.4f}; z = {(v.mean() - sol.regret(pop.arm_means)) / se:+.2f})")
+
+
+def main(argv=None) -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--replicates", type=int, default=20)
+    ap.add_argument("--seed", type=int, default=20261210)
+    ap.add_argument("--workers", type=int, default=2)
+    ap.add_argument("--only", default="A,D,E,F,A2")
+    args = ap.parse_args(argv)
+    parts = args.only.split(",")
+    t0 = time.perf_counter()
+    targets = {"A": {"classic": 0.85, "pooled-thompson": 0.80}, "D": {"classic": 0.30}, "E": {"classic": 1.05},
+               "F": {"classic": 1.05}, "A2": {}}
+    for i, key in enumerate(["A", "D", "E", "F", "A2"]):
+        if key not in parts:
+            continue
+        t = time.perf_counter()
+        res = collect(key, args.replicates, args.seed + i, args.workers,
+                      brier=tuple(BRIER) if key == "A" else ())
+        report(key, res, targets[key])
+        if key == "A2":
+            bayes_optimal_check(res, scenario("A2")[0])
+        print(f"  ({time.perf_counter() - t:.0f} s)")
+    print(f"\n(total {time.perf_counter() - t0:.0f} s)")
+
+
+if __name__ == "__main__":
+    main()
