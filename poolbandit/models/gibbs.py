@@ -228,6 +228,19 @@ class GibbsSampler:
         n_blocks, label = connected_components(sp.csr_matrix(pattern), directed=False)
         self._blocks = [np.flatnonzero(label == j) for j in range(n_blocks)]
         self._block_of = label
+        if data.outcome == "gaussian":
+            self._S_blocks = [self._S[:, idx[:, None], idx[None, :]] for idx in self._blocks]
+        self._s_blocks = [self._s[:, idx] for idx in self._blocks]
+
+    def _block_Ab(self, sigma: float | None = None) -> list[tuple[np.ndarray, np.ndarray]]:
+        """``(A_i, b_i)`` restricted to each coefficient block."""
+        if self._data.outcome == "bernoulli":
+            A = self._A_bern
+            return [(A[:, idx[:, None], idx[None, :]], sb) for idx, sb in zip(self._blocks, self._s_blocks)]
+        if self._sigma_free:
+            s2 = (self._sigma if sigma is None else sigma) ** 2
+            return [(S / s2, sb / s2) for S, sb in zip(self._S_blocks, self._s_blocks)]
+        return list(zip(self._S_blocks, self._s_blocks))
 
     def set_data(self, data: ModelData) -> None:
         """Replace the data by a larger study log of the same study (warm start).
@@ -397,9 +410,8 @@ class GibbsSampler:
         rng = self._rng
         if self._data.outcome == "bernoulli":
             self._draw_omega()
-        A, b = self._Ab()
         m = self._mean()
-        blocks = [(idx, A[:, idx[:, None], idx[None, :]], b[:, idx], m[:, idx]) for idx in self._blocks]
+        blocks = [(idx, Ab, bb, m[:, idx]) for idx, (Ab, bb) in zip(self._blocks, self._block_Ab())]
         # 2a. heterogeneity scales, theta integrated out
         for p in np.flatnonzero(self._random):
             idx, Ab, bb, mb = blocks[self._block_of[p]]
@@ -434,16 +446,15 @@ class GibbsSampler:
         # 2c. noise scale, theta integrated out
         if self._sigma_free:
             self._update_sigma(m)
-            A, b = self._Ab()
+        Abs = self._block_Ab()
         # 3. (beta, Gamma) jointly, theta integrated out
-        self._update_mean(A, b)
+        self._update_mean(Abs)
         # 4. theta
         m = self._mean()
         L = self._L()
         theta = np.empty_like(m)
-        for idx in self._blocks:
-            theta[:, idx] = gm.block_draw_theta(A[:, idx[:, None], idx[None, :]], b[:, idx], m[:, idx],
-                                                L[np.ix_(idx, idx)], rng)
+        for idx, (Ab, bb) in zip(self._blocks, Abs):
+            theta[:, idx] = gm.block_draw_theta(Ab, bb, m[:, idx], L[np.ix_(idx, idx)], rng)
         self._theta = theta
 
     def _update_corr(self, blocks) -> None:
@@ -476,8 +487,8 @@ class GibbsSampler:
         n_obs, yy, scale = self._n_obs, self._yy, self.priors.sigma_scale
         scalar, general = [], []
         const = 0.0  # sum_i (s_i'm_i - m_i'S_i m_i / 2): multiplies 1 / sigma^2
-        for idx in self._blocks:
-            S, sb, mb = self._S[:, idx[:, None], idx[None, :]], self._s[:, idx], m[:, idx]
+        for idx, S, sb in zip(self._blocks, self._S_blocks, self._s_blocks):
+            mb = m[:, idx]
             Lb = L[np.ix_(idx, idx)]
             const += float(np.sum(sb * mb) - 0.5 * np.einsum("ni,nij,nj->", mb, S, mb))
             if len(idx) == 1:
@@ -501,13 +512,13 @@ class GibbsSampler:
         self.n_evals += k
         self._sigma = float(math.exp(x))
 
-    def _update_mean(self, A: np.ndarray, b: np.ndarray) -> None:
+    def _update_mean(self, Abs) -> None:
         L = self._L()
-        N, P = b.shape
+        N, P = self._theta.shape
         Pm = np.zeros((N, P, P))
         cm = np.zeros((N, P))
-        for idx in self._blocks:
-            Pb, cb = gm.block_mean_precision(A[:, idx[:, None], idx[None, :]], b[:, idx], L[np.ix_(idx, idx)])
+        for idx, (Ab, bb) in zip(self._blocks, Abs):
+            Pb, cb = gm.block_mean_precision(Ab, bb, L[np.ix_(idx, idx)])
             Pm[:, idx[:, None], idx[None, :]] = Pb
             cm[:, idx] = cb
         Z = self._Z
