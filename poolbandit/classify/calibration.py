@@ -106,6 +106,11 @@ def brier_decomposition(probability, outcome, *, bins: int = 10) -> dict[str, fl
         categories, with ``brier = reliability - resolution + uncertainty +
         within_bin``. ``within_bin`` is 0 when all forecasts in a bin are equal
         (Murphy's exact partition); ``n`` is the number of rows.
+        ``reliability_chance`` is the reliability term a perfectly calibrated
+        forecaster is expected to show with these forecasts and this many
+        rows (outcomes drawn as Bernoulli(p)):
+        ``sum_c (1/n) sum_bins sum_{i in bin} p_ic (1 - p_ic) / n_bin``; with few
+        participants it is far from 0, so compare ``reliability`` with it.
     """
     p = np.asarray(probability, dtype=float)
     o = np.asarray(outcome, dtype=float)
@@ -117,7 +122,7 @@ def brier_decomposition(probability, outcome, *, bins: int = 10) -> dict[str, fl
     if n == 0:
         raise ValueError("no forecasts to score")
     brier = float(np.sum((p - o) ** 2) / n)
-    rel = res = unc = 0.0
+    rel = res = unc = chance = 0.0
     for c in range(p.shape[1]):
         k = _bin_index(p[:, c], bins)
         count = np.bincount(k, minlength=bins)
@@ -128,8 +133,10 @@ def brier_decomposition(probability, outcome, *, bins: int = 10) -> dict[str, fl
         rel += float(np.sum(count[has] * (f_bar - o_bar) ** 2) / n)
         res += float(np.sum(count[has] * (o_bar - base) ** 2) / n)
         unc += float(base * (1 - base))
+        spread = np.bincount(k, weights=p[:, c] * (1 - p[:, c]), minlength=bins)[has]
+        chance += float(np.sum(spread / count[has]) / n)
     return {"brier": brier, "reliability": rel, "resolution": res, "uncertainty": unc,
-            "within_bin": brier - (rel - res + unc), "n": n}
+            "within_bin": brier - (rel - res + unc), "reliability_chance": chance, "n": n}
 
 
 def reliability_table(probability, outcome, *, bins: int = 10) -> pd.DataFrame:
@@ -222,6 +229,7 @@ class Calibration:
             "participants": int(len(lab)),
             "brier": b["brier"], "reliability": b["reliability"], "resolution": b["resolution"],
             "uncertainty": b["uncertainty"], "within_bin": b["within_bin"],
+            "reliability_chance": b["reliability_chance"],
             "coverage": float(arms.mean()) if len(arms) else float("nan"),
             "coverage_se": float(np.sqrt(arms.mean() * (1 - arms.mean()) / len(arms))) if len(arms) else float("nan"),
             "contrast_coverage": float(con.mean()) if len(con) else float("nan"),
