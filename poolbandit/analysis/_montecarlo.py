@@ -17,7 +17,7 @@ import pandas as pd
 
 from .._random import RngLike
 from ..simulation import simulate
-from ._prepare import prepare
+from ._prepare import Prepared, prepare
 
 __all__ = ["Replicate", "replicate_studies", "summarise_replicates"]
 
@@ -33,15 +33,18 @@ class Replicate:
         True arm values (participant-balanced, over analysed decisions).
     expected : ndarray (n, K)
         True expected reward of every arm at every row of ``log``.
+    prepared : Prepared
+        The analysed decisions of ``log``.
     """
 
     log: pd.DataFrame
     arm_truth: np.ndarray
     expected: np.ndarray
+    prepared: Prepared
 
     def policy_truth(self, design, table: np.ndarray) -> float:
         """True value of a target policy given as an (n, K) table over the rows of ``log``."""
-        prep = prepare(self.log, design)
+        prep = self.prepared
         v = np.sum(table[prep.rows] * self.expected[prep.rows], axis=1)
         return float(prep.per_participant(v).mean())
 
@@ -71,7 +74,7 @@ def replicate_studies(design, policy: str, replicates: int, size: int, rng: RngL
         sub = log.iloc[rows].reset_index(drop=True)
         prep = prepare(sub, design)
         truth = prep.per_participant(expected[rows][prep.rows]).mean(axis=0)
-        out.append(Replicate(sub, truth, expected[rows]))
+        out.append(Replicate(sub, truth, expected[rows], prep))
     return out
 
 
