@@ -316,7 +316,8 @@ def _build_model(data: ModelData, priors: PriorSpec):
                                  dims=("coef", "coef_"))
                 tau_r, dev = stds, pt.dot(z, chol.T)
             else:
-                tau_r = _tau_prior(priors, "tau" if n_rand == n_coef else "tau_random", dims="random_coef")
+                every = n_rand == n_coef
+                tau_r = _tau_prior(priors, "tau" if every else "tau_random", dims="coef" if every else "random_coef")
                 dev = z * tau_r[None, :]
             if n_rand == n_coef:
                 theta = theta + dev
@@ -378,12 +379,12 @@ def _check_options(chains: int, draws: int, tune: int, target_accept: float) -> 
 def _check_data(data: ModelData) -> None:
     bad = np.flatnonzero(~np.isfinite(data.y))
     if len(bad):
-        raise ValueError(f"y has {len(bad)} non-finite value(s) (first at row {bad[0] + 1}: {data.y[bad[0]]!r}); "
+        raise ValueError(f"y has {len(bad)} non-finite value(s) (first at row {bad[0] + 1}: {float(data.y[bad[0]])!r}); "
                          "drop missed sessions before fitting")
     if data.outcome == "bernoulli":
         bad = np.flatnonzero((data.y != 0) & (data.y != 1))
         if len(bad):
-            raise ValueError(f"a bernoulli outcome must be 0 or 1; row {bad[0] + 1} has {data.y[bad[0]]!r}")
+            raise ValueError(f"a bernoulli outcome must be 0 or 1; row {bad[0] + 1} has {float(data.y[bad[0]])!r}")
         if data.obs_sd is not None:
             raise ValueError("obs_sd (a known noise sd) applies to a gaussian outcome only")
     elif data.outcome != "gaussian":
