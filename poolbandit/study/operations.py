@@ -445,7 +445,7 @@ def assign(db: str | Path, *, step: int | None = None, context: str | Path | Non
                 "INSERT INTO decisions (participant, decision, step, arm, propensity, probabilities, context, policy,"
                 " condition, seed, spawn_key, snapshot, created) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
                 [(int(pid[i]), int(who.decision[i]), s, arms[i], float(got.propensity[i]),
-                  replay.json_floats(got.probabilities[i]), replay.json_floats(ctx[i]), got.policy[i], cond[i], seed,
+                  replay.json_floats(got.probabilities[i]), replay.context_bytes(ctx[i]), got.policy[i], cond[i], seed,
                   got.spawn_key[i], snap if not got.control[i] else None, now) for i in range(len(pid))])
         out = pd.DataFrame({"participant": due_ids, "decision": who.decision.astype(np.int64),
                             "step": np.full(len(pid), s, dtype=np.int64), "arm": arms,
@@ -457,7 +457,7 @@ def assign(db: str | Path, *, step: int | None = None, context: str | Path | Non
 def _check_same_context(parsed, stored: pd.DataFrame, design: DesignSpec, step: int) -> None:
     table, ids, ctx = parsed
     problems = Problems(table.source)
-    stored_ctx = replay.parse_json_floats(stored.attrs["context"], len(design.features))
+    stored_ctx = replay.context_array(stored.attrs["context"], len(design.features))
     where = pd.Index(stored["participant"]).get_indexer(pd.Index(ids))
     problems.rows(table.frame, where < 0, "participant", f"had no decision at step {step} (already assigned)")
     hit = np.flatnonzero(where >= 0)
@@ -525,24 +525,34 @@ def record(db: str | Path, outcomes: str | Path, *, correct: bool = False) -> Re
                 problems.add(f"column decision: {int(dup.sum()) - 20} more duplicate rows")
 
         with write_transaction(conn):
+            # look up only the file's keys (indexed joins), not the whole history
+            conn.execute("CREATE TEMP TABLE IF NOT EXISTS incoming (participant TEXT, decision INTEGER)")
+            conn.execute("DELETE FROM temp.incoming")
+            lookup = np.flatnonzero((ids != "") & ~dup)
+            conn.executemany("INSERT INTO temp.incoming VALUES (?, ?)",
+                             [(ids[j], int(dec[j]) if key_ok[j] else None) for j in lookup])
             known = conn.execute(
-                "SELECT p.participant, d.decision, d.id, d.step, d.arm, l.id, l.reward, l.recorded "
-                "FROM decisions d JOIN participants p ON p.id = d.participant "
+                "SELECT i.participant, i.decision, d.id, d.step, d.arm, l.id, l.reward, l.recorded, p.id "
+                "FROM temp.incoming i LEFT JOIN participants p ON p.participant = i.participant "
+                "LEFT JOIN decisions d ON d.participant = p.id AND d.decision = i.decision "
                 "LEFT JOIN latest_outcomes l ON l.decision = d.id").fetchall()
-            enrolled = {r[0] for r in conn.execute("SELECT participant FROM participants")}
+            conn.execute("DELETE FROM temp.incoming")
             last = conn.execute("SELECT max(step) FROM steps").fetchone()[0]
-            stored = pd.DataFrame(known, columns=["participant", "decision", "id", "step", "arm", "latest",
-                                                  "latest_reward", "recorded"])
-            stored["_key"] = stored["participant"] + "#" + stored["decision"].astype(str)
+            looked = pd.DataFrame(known, columns=["participant", "decision", "id", "step", "arm", "latest",
+                                                  "latest_reward", "recorded", "pid"])
+            enrolled = set(looked.loc[looked["pid"].notna(), "participant"])
+            stored = looked[looked["id"].notna()].reset_index(drop=True)
+            stored["_key"] = stored["participant"] + "#" + stored["decision"].astype(np.int64).astype(str)
             idx = pd.Index(stored["_key"]).get_indexer(keyed["_key"])
             idx[dup] = -1  # a repeated row is reported once, as a duplicate
             found = idx >= 0
-            unknown = np.array([i != "" and i not in enrolled for i in ids], dtype=bool)
+            unknown = np.array([i != "" and i not in enrolled for i in ids], dtype=bool) & ~dup
             problems.rows(frame, unknown, "participant", "unknown participant (not enrolled)")
-            counts = stored.groupby("participant")["decision"].max()
-            made = counts.reindex(ids).fillna(0).astype(np.int64).to_numpy()
+            made = np.zeros(len(ids), dtype=np.int64)
             not_yet = key_ok & ~dup & ~unknown & ~found
             for j in np.flatnonzero(not_yet)[:20]:
+                made[j] = conn.execute("SELECT count(*) FROM decisions d JOIN participants p ON p.id = "
+                                       "d.participant WHERE p.participant = ?", (ids[j],)).fetchone()[0]
                 problems.add(f"row {j + 1}, column decision: decision {int(dec[j])} of participant "
                              f"{format_value(ids[j])} has not been assigned yet (decisions assigned so far: "
                              f"{made[j]}), got {format_value(frame['decision'].iat[j])}")
@@ -663,7 +673,7 @@ def export(db: str | Path, out: str | Path | None = None, *, design_out: str | P
         raise InputError(f"{db}: nothing to export yet (no decisions have been assigned)")
     k, f, q = design.n_arms, len(design.features), len(design.covariates)
     probs = replay.parse_json_floats([r[7] for r in rows], k)
-    ctx = replay.parse_json_floats([r[8] for r in rows], f)
+    ctx = replay.context_array([r[8] for r in rows], f)
     cov = replay.parse_json_floats([r[9] for r in rows], q)
     data: dict[str, object] = {
         "participant": [r[0] for r in rows],

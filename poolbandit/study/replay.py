@@ -41,7 +41,8 @@ from ..policies.registry import make_policy
 from ..spec import DesignSpec, PolicySpec
 
 __all__ = ["History", "Due", "Derived", "load_history", "due", "derive", "randomise", "step_keys",
-           "control_name", "json_floats", "parse_json_floats"]
+           "control_name", "json_floats", "parse_json_floats", "context_bytes", "context_array",
+           "latest_rewards", "posterior_snapshot", "key_text"]
 
 ASSIGN_STREAM = 0
 ENROL_STREAM = 1
@@ -78,6 +79,26 @@ def parse_json_floats(texts: list[str], width: int) -> np.ndarray:
     if not texts:
         return np.zeros((0, width))
     return np.asarray(json.loads("[" + ",".join(texts) + "]"), dtype=float).reshape(len(texts), width)
+
+
+def context_bytes(row: np.ndarray) -> bytes:
+    """A context row as stored: float64 little-endian bytes."""
+    return np.ascontiguousarray(row, dtype="<f8").tobytes()
+
+
+def context_array(blobs, width: int) -> np.ndarray:
+    """Stored context rows back as an (n, width) float array (bit for bit)."""
+    return np.frombuffer(b"".join(blobs), dtype="<f8").astype(float).reshape(len(blobs), width)
+
+
+def _arm_codes(arms, design: DesignSpec) -> np.ndarray:
+    import pandas as pd
+
+    codes = pd.Index(list(design.arms)).get_indexer(np.asarray(arms, dtype=object))
+    if len(codes) and codes.min() < 0:
+        bad = np.asarray(arms, dtype=object)[codes < 0][0]
+        raise ValueError(f"the store holds an arm {bad!r} that is not in the design")
+    return codes.astype(np.int64)
 
 
 def randomise(seed: int, index: int, n: int, ratio: float) -> np.ndarray:
@@ -147,20 +168,22 @@ def load_history(conn: sqlite3.Connection, design: DesignSpec, spec: PolicySpec,
     cov = parse_json_floats([r[4] for r in rows], q)
     rows = conn.execute("SELECT id, participant, decision, step, arm, context FROM decisions "
                         "ORDER BY step, participant").fetchall()
-    d_id = np.array([r[0] for r in rows], dtype=np.int64)
-    d_part = np.searchsorted(p_id, np.array([r[1] for r in rows], dtype=np.int64))
-    d_decision = np.array([r[2] for r in rows], dtype=np.int64)
-    d_step = np.array([r[3] for r in rows], dtype=np.int64)
-    arm_index = {a: k for k, a in enumerate(design.arms)}
-    d_arm = np.array([arm_index[r[4]] for r in rows], dtype=np.int64)
-    d_ctx = parse_json_floats([r[5] for r in rows], f)
-    rows = conn.execute("SELECT id, decision, reward, batch FROM outcomes ORDER BY id").fetchall()
-    o_id = np.array([r[0] for r in rows], dtype=np.int64)
+    m = len(rows)
+    cols = list(zip(*rows)) if rows else [()] * 6
+    d_id = np.fromiter(cols[0], dtype=np.int64, count=m)
+    d_part = np.searchsorted(p_id, np.fromiter(cols[1], dtype=np.int64, count=m))
+    d_decision = np.fromiter(cols[2], dtype=np.int64, count=m)
+    d_step = np.fromiter(cols[3], dtype=np.int64, count=m)
+    d_arm = _arm_codes(cols[4], design)
+    d_ctx = context_array(cols[5], f)
+    rows = conn.execute("SELECT id, decision, coalesce(reward, 'nan'), batch FROM outcomes ORDER BY id").fetchall()
+    m = len(rows)
+    cols = list(zip(*rows)) if rows else [()] * 4
+    o_id = np.fromiter(cols[0], dtype=np.int64, count=m)
     order = np.argsort(d_id, kind="stable")
-    o_dec = order[np.searchsorted(d_id[order], np.array([r[1] for r in rows], dtype=np.int64))] \
-        if rows else np.zeros(0, dtype=np.int64)
-    o_reward = np.array([np.nan if r[2] is None else r[2] for r in rows], dtype=float)
-    o_batch = np.array([r[3] for r in rows], dtype=np.int64)
+    o_dec = order[np.searchsorted(d_id[order], np.fromiter(cols[1], dtype=np.int64, count=m))]
+    o_reward = np.fromiter((float(x) for x in cols[2]), dtype=float, count=m)
+    o_batch = np.fromiter(cols[3], dtype=np.int64, count=m)
     step_batch = dict(conn.execute("SELECT step, batch FROM steps").fetchall())
     return History(design, spec, seed, p_id, ids, p_batch, enrol, control, cov, d_id, d_part, d_decision,
                    d_step, d_arm, d_ctx, o_id, o_dec, o_reward, o_batch, step_batch)

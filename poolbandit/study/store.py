@@ -38,7 +38,8 @@ Schema (version 2)
 ``decisions``
     ``participant`` (row id), ``decision`` (1-based), ``step``, ``arm``,
     ``propensity``, ``probabilities`` (JSON list, one per arm), ``context``
-    (JSON list in design feature order), ``policy``, ``condition``, seed
+    (BLOB: float64 little-endian, design feature order; read fast when a
+    step rebuilds the policy from the whole history), ``policy``, ``condition``, seed
     material (``seed``, ``spawn_key``), ``snapshot``, ``created``.
     UNIQUE (participant, decision) and UNIQUE (participant, step).
 ``outcomes``
@@ -52,9 +53,9 @@ Schema (version 2)
 ``latest_outcomes`` (view, version 2)
     The current outcome of every decision that has one.
 
-Floats are stored as SQLite REAL (IEEE double) or as JSON written with
-Python's shortest round-trip representation, so every number reads back
-bit for bit.
+Floats are stored as SQLite REAL (IEEE double), as float64 bytes, or as
+JSON written with Python's shortest round-trip representation, so every
+number reads back bit for bit.
 """
 
 from __future__ import annotations
@@ -161,7 +162,7 @@ CREATE TABLE decisions (
     arm           TEXT NOT NULL,
     propensity    REAL NOT NULL CHECK (propensity > 0 AND propensity <= 1),
     probabilities TEXT NOT NULL,
-    context       TEXT NOT NULL,
+    context       BLOB NOT NULL CHECK (length(context) % 8 = 0),
     policy        TEXT NOT NULL,
     condition     TEXT NOT NULL CHECK (condition IN ('adaptive', 'control')),
     seed          TEXT NOT NULL,
@@ -171,7 +172,7 @@ CREATE TABLE decisions (
     UNIQUE (participant, decision),
     UNIQUE (participant, step)
 );
-CREATE INDEX decisions_step ON decisions(step);
+CREATE INDEX decisions_step ON decisions(step, participant);
 CREATE TABLE outcomes (
     id          INTEGER PRIMARY KEY,
     decision    INTEGER NOT NULL REFERENCES decisions(id),

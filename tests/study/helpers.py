@@ -8,7 +8,7 @@ import subprocess
 import sys
 from pathlib import Path
 
-__all__ = ["DESIGN_GAUSSIAN", "DESIGN_BERNOULLI", "write", "cli", "cli_in_process", "db_state"]
+__all__ = ["DESIGN_GAUSSIAN", "DESIGN_BERNOULLI", "write", "cli", "poolbandit", "cli_in_process", "db_state"]
 
 #: A small gaussian design in the demo scenario's shape (three practice formats).
 DESIGN_GAUSSIAN = """
@@ -119,10 +119,15 @@ def _env() -> dict[str, str]:
     return env
 
 
-def cli(*args: str | os.PathLike, cwd: Path | None = None, timeout: float = 120) -> subprocess.CompletedProcess:
+def poolbandit(*args: str | os.PathLike, timeout: float = 300) -> subprocess.CompletedProcess:
+    """Run ``python -m poolbandit.cli.main ARGS`` in a subprocess."""
+    return subprocess.run([sys.executable, "-m", "poolbandit.cli.main", *map(str, args)],
+                          capture_output=True, text=True, env=_env(), timeout=timeout)
+
+
+def cli(*args: str | os.PathLike, timeout: float = 120) -> subprocess.CompletedProcess:
     """Run ``python -m poolbandit.cli.main study ARGS`` in a subprocess."""
-    return subprocess.run([sys.executable, "-m", "poolbandit.cli.main", "study", *map(str, args)],
-                          capture_output=True, text=True, cwd=cwd, env=_env(), timeout=timeout)
+    return poolbandit("study", *args, timeout=timeout)
 
 
 def cli_in_process(capsys, *args: str | os.PathLike) -> tuple[int, str, str]:
