@@ -41,11 +41,56 @@ __all__: list[str] = []  # private module
 # --------------------------------------------------------------------------
 # Collapsed Gaussian blocks
 # --------------------------------------------------------------------------
+_SMALL = 4  # blocks up to this size use elementwise Cholesky / substitution (less call overhead)
+
+
+def _cholesky(M: np.ndarray) -> np.ndarray:
+    """Batched lower Cholesky factor; elementwise over the batch for small blocks."""
+    k = M.shape[-1]
+    if k > _SMALL:
+        return np.linalg.cholesky(M)
+    C = np.zeros_like(M)
+    for j in range(k):
+        d = M[:, j, j] - np.sum(C[:, j, :j] ** 2, axis=1)
+        C[:, j, j] = np.sqrt(d)
+        for i in range(j + 1, k):
+            C[:, i, j] = (M[:, i, j] - np.sum(C[:, i, :j] * C[:, j, :j], axis=1)) / C[:, j, j]
+    return C
+
+
+def _forward(C: np.ndarray, v: np.ndarray) -> np.ndarray:
+    """Solve ``C x = v`` for lower-triangular ``C`` (N, k, k) and ``v`` (N, k) or (N, k, r)."""
+    k = C.shape[-1]
+    if k > _SMALL:
+        return np.linalg.solve(C, v[..., None])[..., 0] if v.ndim == 2 else np.linalg.solve(C, v)
+    x = np.empty_like(v)
+    for i in range(k):
+        acc = v[:, i].copy()
+        for j in range(i):
+            acc -= (C[:, i, j] * x[:, j].T).T if v.ndim == 3 else C[:, i, j] * x[:, j]
+        x[:, i] = (acc.T / C[:, i, i]).T if v.ndim == 3 else acc / C[:, i, i]
+    return x
+
+
+def _backward(C: np.ndarray, v: np.ndarray) -> np.ndarray:
+    """Solve ``C' x = v`` for lower-triangular ``C`` (N, k, k) and ``v`` (N, k)."""
+    k = C.shape[-1]
+    if k > _SMALL:
+        return np.linalg.solve(np.swapaxes(C, 1, 2), v[..., None])[..., 0]
+    x = np.empty_like(v)
+    for i in reversed(range(k)):
+        acc = v[:, i].copy()
+        for j in range(i + 1, k):
+            acc -= C[:, j, i] * x[:, j]
+        x[:, i] = acc / C[:, i, i]
+    return x
+
+
 def _block_prepare(A: np.ndarray, L: np.ndarray):
     """``M_i = I + L'A_iL`` and its Cholesky factor, batched: (N, k, k)."""
     k = L.shape[0]
     M = L.T @ A @ L + np.eye(k)
-    return np.linalg.cholesky(M)
+    return _cholesky(M)
 
 
 def block_collapsed(A: np.ndarray, b: np.ndarray, m: np.ndarray, L: np.ndarray, *,
@@ -70,7 +115,7 @@ def block_collapsed(A: np.ndarray, b: np.ndarray, m: np.ndarray, L: np.ndarray, 
     if not np.any(L):
         return extra
     C = _block_prepare(A, L)
-    v = np.linalg.solve(C, (r @ L)[..., None])[..., 0]
+    v = _forward(C, r @ L)
     logdet = np.sum(np.log(np.diagonal(C, axis1=1, axis2=2)))
     return extra + float(-logdet + 0.5 * np.sum(v * v))
 
@@ -89,8 +134,8 @@ def block_mean_precision(A: np.ndarray, b: np.ndarray, L: np.ndarray):
         return A, b
     C = _block_prepare(A, L)
     LtA = L.T @ A  # L'A_i
-    G = np.linalg.solve(C, LtA)  # C^{-1} L'A_i
-    g = np.linalg.solve(C, (b @ L)[..., None])[..., 0]  # C^{-1} L'b_i
+    G = _forward(C, LtA)  # C^{-1} L'A_i
+    g = _forward(C, b @ L)  # C^{-1} L'b_i
     return A - np.einsum("nki,nkj->nij", G, G), b - np.einsum("nki,nk->ni", G, g)
 
 
@@ -108,9 +153,8 @@ def block_draw_theta(A: np.ndarray, b: np.ndarray, m: np.ndarray, L: np.ndarray,
     if not np.any(L):
         return m.copy()
     C = _block_prepare(A, L)
-    u = np.linalg.solve(C, (r @ L)[..., None])  # C^{-1} L'r
-    Ct = np.swapaxes(C, 1, 2)
-    z = np.linalg.solve(Ct, u + e[..., None])[..., 0]  # M^{-1}L'r + C^{-T} e
+    u = _forward(C, r @ L)  # C^{-1} L'r
+    z = _backward(C, u + e)  # M^{-1}L'r + C^{-T} e
     return m + z @ L.T
 
 
