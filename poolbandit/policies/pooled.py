@@ -309,6 +309,13 @@ class PooledThompsonPolicy(Policy):
 
     def arm_value_moments(self, draw: _PopulationDraw, participant: np.ndarray, context: np.ndarray):
         """Mean (n, K) and covariance (n, K) variances or (n, K, K) of the arm values in ``context``."""
+        if draw.L is None and self._width == 1:  # arm levels only: scalar blocks, no batched algebra
+            participant = np.asarray(participant)
+            a, b = draw.A[participant, :, 0, 0], draw.b[participant, :, 0]
+            m = draw.beta + self._W[participant] @ draw.gamma.T
+            t2 = draw.tau**2
+            var = t2 / (1.0 + t2 * a)
+            return m + var * (b - a * m), var
         mean, cov = self.conditional(draw, participant)
         z = np.concatenate([np.ones((len(participant), 1)), self._model_context(context)], axis=1)  # (n, d)
         n, k, d = len(participant), self.n_arms, self._width

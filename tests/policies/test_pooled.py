@@ -90,15 +90,16 @@ def fitted_policy(name, design, *, seed=3, n_obs=60):
 # Probability that each arm is best
 # --------------------------------------------------------------------------
 def test_gaussian_quadrature_matches_prob_best_and_quad():
-    """The specialised quadrature reproduces the generic prob_best with scipy.stats.norm on the
-    same nodes (rounding only, 1e-12), and agrees with scipy.integrate.quad of
+    """The specialised quadrature with prob_best's node levels reproduces the generic prob_best
+    with scipy.stats.norm (rounding only, 1e-12), and agrees with scipy.integrate.quad of
     int phi_k prod_j Phi_j to 5e-4 at 64 nodes (second-order error in 1/nodes; measured 2-4e-4
-    for standard deviations that differ 20-fold), and to 6e-3 at the default 16 nodes."""
+    for standard deviations that differ 20-fold), and to 4e-3 with the default 12 midpoint
+    nodes (measured at most 3.1e-3 over 400 such rows)."""
     rng = np.random.default_rng(0)
     mean = rng.normal(0, 0.5, (40, 4))
     sd = np.exp(rng.uniform(np.log(0.05), 0.0, (40, 4)))
     for nodes in (16, 64):
-        fast = prob_best_normal(mean, sd, nodes=nodes)
+        fast = prob_best_normal(mean, sd, nodes=nodes, placement="uniform")
         assert np.abs(fast - prob_best(stats.norm(mean, sd), points_per_arm=nodes)).max() < 1e-12
     ref = np.empty((8, 4))
     for i in range(8):
@@ -111,7 +112,7 @@ def test_gaussian_quadrature_matches_prob_best_and_quad():
             lo, hi = mean[i, k] - 9 * sd[i, k], mean[i, k] + 9 * sd[i, k]
             ref[i, k] = integrate.quad(f, lo, hi, points=list(mean[i, others]), limit=200, epsabs=1e-11)[0]
     assert np.abs(prob_best_normal(mean[:8], sd[:8], nodes=64) - ref).max() < 5e-4
-    assert np.abs(prob_best_normal(mean[:8], sd[:8]) - ref).max() < 6e-3
+    assert np.abs(prob_best_normal(mean[:8], sd[:8]) - ref).max() < 4e-3
 
 
 def test_correlated_probabilities_against_scipy_orthant():
@@ -206,7 +207,7 @@ def test_bernoulli_conditional_given_polya_gamma():
 def test_late_enrollers_start_from_population_part():
     """A participant with no observations gets, for every retained draw, arm values
     N(r_k'(beta + Gamma w), r_k' Sigma r_k): the policy's table equals the average over draws
-    of prob_best(scipy.stats.norm) on that population part (quadrature tolerance 6e-3, see
+    of prob_best(scipy.stats.norm) on that population part (quadrature tolerance 4e-3, see
     test_gaussian_quadrature_matches_prob_best_and_quad). And pooling moves them: after the
     first wave shows story clearly best, a new participant's first table favours story, while
     unpooled Thompson (own data only) is uniform."""
@@ -223,7 +224,7 @@ def test_late_enrollers_start_from_population_part():
         var = (draw.tau.reshape(3, 2) ** 2)[None] * z[:, None, :] ** 2
         ref += prob_best(stats.norm(np.einsum("nkd,nd->nk", m, z), np.sqrt(var.sum(axis=2))), points_per_arm=200)
     ref /= len(pol.retained_draws)
-    assert np.abs(p - ref).max() < 6e-3
+    assert np.abs(p - ref).max() < 4e-3
     # pooling moves new participants: 120 rewards with story 1.0 above the rest
     rng = np.random.default_rng(5)
     who, arm = rng.integers(0, 12, 120), rng.integers(0, 3, 120)
