@@ -80,7 +80,7 @@ from ._prepare import Prepared, SeMethod, prepare, ratio_estimate
 from .outcome_models import OutcomeModel, OutcomePredictions, as_predictions
 
 __all__ = ["arm_values", "ESTIMATORS", "ESTIMATOR_LABELS", "ARM_VALUE_COLUMNS", "category_map",
-           "outcome_predictions"]
+           "outcome_predictions", "model_summary"]
 
 #: Estimators of :func:`arm_values`, in report order.
 ESTIMATORS = ["naive", "ipw", "hajek", "dr", "model"]
@@ -258,12 +258,23 @@ def _group_rows(group: str, prep: Prepared, design, pred: OutcomePredictions | N
 
 
 def _model_estimate(prep: Prepared, pred: OutcomePredictions, k: int, level: float) -> dict[str, float]:
-    est = float(prep.per_participant(pred.mean[prep.rows, k]).mean())
-    if pred.draws is None:
+    draws = None if pred.draws is None else pred.draws[:, prep.rows, k]
+    return model_summary(prep, pred.mean[prep.rows, k], draws, level)
+
+
+def model_summary(prep: Prepared, mean: np.ndarray, draws: np.ndarray | None, level: float) -> dict[str, float]:
+    """Participant-balanced average of per-decision model values, with a posterior interval from draws.
+
+    ``mean`` has shape (n,) over the analysed decisions and ``draws`` (S, n);
+    the interval is the equal-tailed ``level`` quantile interval of the
+    averages of the draws, and ``se`` their sd. Without draws only the
+    estimate is given.
+    """
+    est = float(prep.per_participant(mean).mean())
+    if draws is None:
         return {"estimate": est, "se": np.nan, "lower": np.nan, "upper": np.nan}
-    d = pred.draws[:, prep.rows, k]  # (S, n)
-    per = np.zeros((d.shape[0], prep.n_participants))
-    np.add.at(per.T, prep.participant, (prep.balance[:, None] * d.T))
+    per = np.zeros((draws.shape[0], prep.n_participants))
+    np.add.at(per.T, prep.participant, (prep.balance[:, None] * draws.T))
     values = per.mean(axis=1)
     lo, hi = np.quantile(values, [0.5 - level / 2, 0.5 + level / 2])
     return {"estimate": est, "se": float(values.std(ddof=1)), "lower": float(lo), "upper": float(hi)}

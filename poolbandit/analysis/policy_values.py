@@ -58,7 +58,7 @@ from ..policies._probability import argmax_ties
 from ..policies.base import Batch
 from ..policies.registry import make_policy
 from ._prepare import Prepared, SeMethod, prepare, ratio_estimate
-from .arm_values import ESTIMATOR_LABELS, outcome_predictions
+from .arm_values import ESTIMATOR_LABELS, model_summary, outcome_predictions
 from .outcome_models import OutcomeModel, OutcomePredictions
 
 __all__ = ["policy_values", "replay_probabilities", "builtin_policies", "POLICY_VALUE_COLUMNS",
@@ -288,8 +288,9 @@ def _policy_rows(name, source, table, note, prep: Prepared, pred, opts, *, weigh
         score = direct + w * (prep.y - mu[np.arange(len(w)), prep.arm])
         out.append(row("dr", why=f"{pred.name} fitted on the same data (no cross-fitting)",
                        values=ratio_estimate(prep.per_participant(score), None, **opts), diag=diag))
-    out.append(row("model", why=f"direct method with the {pred.name}",
-                   values={**ratio_estimate(prep.per_participant(direct), None, **opts)}))
+    draws = None if pred.draws is None else np.einsum("snk,nk->sn", pred.draws[:, prep.rows], pi)
+    why = f"direct method with the {pred.name}" + ("" if draws is not None else "; no posterior draws, no interval")
+    out.append(row("model", why=why, values=model_summary(prep, direct, draws, opts["level"])))
     return out
 
 
