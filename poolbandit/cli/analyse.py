@@ -73,17 +73,18 @@ def run(args: argparse.Namespace) -> int:
                          participant_outcomes=outcomes, level=args.level, se=args.se, rng=g_rest,
                          progress=show_progress())
     out = output_dir(args.out)
-    page = analysis_page(result, level=args.level)
+    html = analysis_page(result, level=args.level).render()  # everything computed before any file is written
     for name, table in (("arm_values.csv", result.arm_values), ("policy_values.csv", result.policy_values),
                         ("conditions.csv", result.conditions)):
         with atomic_path(out / name) as tmp:
             table.to_csv(tmp, index=False, lineterminator="\n")
-    page.write(out / "report.html")
+    with atomic_path(out / "report.html") as tmp:
+        tmp.write_text(html, encoding="utf-8")
     av = result.arm_values
     main = av[(av["group"] == "all")].pivot(index="arm", columns="estimator", values="estimate")
     pd.set_option("display.width", 120)
     print(f"arm values ({len(log)} decisions):")
-    print(main.reindex(columns=[c for c in ("naive", "ipw", "hajek", "dr", "model") if c in main.columns])
+    print(main.reindex(index=list(design.arms), columns=[c for c in ("naive", "ipw", "hajek", "dr", "model") if c in main.columns])
           .round(3).to_string())
     refused = av[av["status"] == "refused"]
     for note_text in pd.unique(refused["note"]):

@@ -156,6 +156,11 @@ def test_cli_full_run_with_categories_conditions_and_outcomes(design, tmp_path):
     html = (tmp_path / "out" / "report.html").read_text()
     assert "Nie, Tian, Taylor and Zou 2018" in html and "Hadad, Hirshberg, Zhan, Wager and Athey 2021" in html
     assert (av.loc[av["estimator"] == "dr", "status"] == "ok").all()  # the default outcome model ran
+    from poolbandit.analysis.outcome_models import hierarchical_available
+
+    if hierarchical_available():  # the hierarchical model's posterior gives the model rows an interval
+        model = av[(av["estimator"] == "model") & (av["group"] == "all")]
+        assert np.isfinite(model["lower"]).all() and (model["lower"] < model["upper"]).all()
 
 
 def test_cli_same_seed_same_tables(one_log, tmp_path):
