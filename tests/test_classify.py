@@ -414,3 +414,240 @@ def test_reliability_table_counts_and_frequencies():
     np.testing.assert_array_equal(t["n"].to_numpy(), counts[counts > 0])
     k = np.minimum((p * 5).astype(int), 4)
     np.testing.assert_allclose(t["observed"], [o[k == j].mean() for j in t["bin"]], rtol=1e-12)
+
+
+def test_chance_level_of_reliability_matches_simulation():
+    """Check ``reliability_chance`` (the reliability term expected of a perfectly calibrated forecaster)
+    against its definition by simulation: outcomes drawn from the forecasts themselves (common practice,
+    a consistency resampling check). Tolerance: 4 Monte Carlo SEs of the average over 400 resamples.
+    """
+    rng = np.random.default_rng(12)
+    p = rng.dirichlet([1.0, 1.0, 1.0], size=150)
+    rels = []
+    for _ in range(400):
+        cat = (rng.random(150)[:, None] > np.cumsum(p, axis=1)).sum(axis=1)
+        rels.append(brier_decomposition(p, np.eye(3)[cat])["reliability"])
+    chance = brier_decomposition(p, np.eye(3)[cat])["reliability_chance"]
+    assert abs(np.mean(rels) - chance) < 4 * np.std(rels, ddof=1) / np.sqrt(400)
+
+
+# --------------------------------------------------------------------------
+# With the fast engine on a simulated study (pooled Thompson sampling collects the data)
+# --------------------------------------------------------------------------
+SCENARIO = """
+[study]
+arms = ["drill", "story", "roleplay"]
+horizon = 28
+reward = "log_minutes"
+[population]
+size = 80
+arm_sd = [0.25, 0.25, 0.25]
+noise_sd = 0.8
+adherence = 0.85
+waves = 4
+[[population.types]]
+name = "drill-leaning"
+share = 0.25
+arm_means = [3.0, 2.2, 2.2]
+[[population.types]]
+name = "story-leaning"
+share = 0.25
+arm_means = [2.2, 3.0, 2.2]
+[[population.types]]
+name = "roleplay-leaning"
+share = 0.25
+arm_means = [2.2, 2.2, 3.0]
+[[population.types]]
+name = "no-clear-preference"
+share = 0.25
+arm_means = [2.4, 2.4, 2.4]
+[priors]
+beta_sd = 3.0
+[policies.pooled]
+kind = "pooled-thompson"
+clip = [0.05, 0.9]
+explore_first = 3
+[policies.solo]
+kind = "thompson"
+model = "normal"
+prior_mean = 2.4
+prior_sd = 1.0
+noise_sd = 0.8
+[[categories]]
+name = "drill-leaning"
+best = "drill"
+margin = 0.2
+[[categories]]
+name = "story-leaning"
+best = "story"
+margin = 0.2
+[[categories]]
+name = "roleplay-leaning"
+best = "roleplay"
+margin = 0.2
+[[categories]]
+name = "no-clear-preference"
+within = 0.2
+"""
+
+
+def _fast_replicate(design, rng, *, silence: str | None = None):
+    """Simulate with pooled Thompson sampling, fit the fast engine, classify pooled and unpooled."""
+    from poolbandit._random import spawn
+    from poolbandit.models.effects import arm_effects
+    from poolbandit.models.fit import fit
+    from poolbandit.simulation import simulate
+    from poolbandit.classify import true_effects, unpooled_effects
+
+    g_sim, g_fit, g_pop, g_un = spawn(rng, 4)
+    result = simulate(design, "pooled", g_sim)
+    log = result.log.copy()
+    if silence is not None:  # a participant whose sessions were all missed: no data at all
+        log.loc[log["participant"] == silence, design.study.reward] = np.nan
+    idata = fit(log, design, engine="fast", chains=2, draws=300, tune=100, rng=g_fit)
+    effect = arm_effects(idata, design.arms, design.features)
+    truth = true_effects(result.population)
+    pooled = classify(effect, design.categories)
+    un = classify(unpooled_effects(log, design, draws=600, rng=g_un), design.categories)
+    return {"idata": idata, "effect": effect, "pooled": pooled, "unpooled": un, "truth": truth, "g_pop": g_pop}
+
+
+@pytest.fixture(scope="module")
+def fast_study():
+    from poolbandit.spec import parse_design
+
+    design = parse_design(SCENARIO)
+    return design, _fast_replicate(design, 20261203, silence="p080")
+
+
+def test_participant_without_data_gets_population_shares_and_no_label(fast_study):
+    """A participant with no observations has the population predictive as posterior, so its category
+    probabilities equal the shares implied by the fitted population distribution (hierarchical model,
+    BDA3 section 5.3: a new group's parameters are drawn from the population distribution), and it
+    stays unlabelled. Tolerance: 4 combined Monte Carlo SEs (ArviZ ESS-based) of the two estimates.
+    """
+    design, rep = fast_study
+    pop = population_effects(rep["idata"], design.arms, design.features, n_new=200, rng=rep["g_pop"])
+    silent = rep["effect"].sel(participant=["p080"])
+    c = classify(silent, design.categories, population_effect=pop)
+    p = c.probabilities.set_index("category")
+    shares = c.prevalence.query("source == 'new participant (population model)' and set == 'exclusive'")
+    shares = shares.set_index("category")
+    for name in c.names:
+        tol = 4 * np.hypot(p.loc[name, "exclusive_mc_se"], shares.loc[name, "mc_se"])
+        assert abs(p.loc[name, "exclusive_probability"] - shares.loc[name, "share"]) < tol, name
+    assert c.labels["label"].iloc[0] == UNDETERMINED
+    assert c.labels["top_probability"].iloc[0] < 0.5  # four types in equal shares: nobody near 0.8
+    # and participants with data are labelled too: the test is not passing because everyone is undetermined
+    assert (rep["pooled"].labels["label"] != UNDETERMINED).mean() > 0.2
+
+
+def test_fast_engine_calibration_in_simulation(fast_study):
+    """checks.md 11 (Brier 1950; Murphy 1973), small seeded version of
+    benchmarks/classification_calibration.py: three replicates of the N = 80, K = 3, horizon 28 scenario
+    with four latent types, data from pooled Thompson sampling, fast engine.
+
+    Bounds: 90% effect intervals cover the truth for 85-95% of the 720 participant-arm pairs (the
+    brief's band; binomial SE about 0.011). Reliability: with 240 participants a perfectly calibrated
+    forecaster already shows a reliability term near 0.025 (``reliability_chance``), so the bound is on
+    the excess over chance, 0.02 (the benchmark's bound on the raw term needs its 1600 participants).
+    Pooled against unpooled Brier: not asserted to be lower (the benchmark measures it over 20
+    replicates); here only that pooling is not significantly worse (paired difference above -2 SE).
+    Measured at these seeds: coverage 0.918, reliability 0.044 against chance 0.0245 (excess 0.0195,
+    close to the bound: a normal population model is misspecified for four discrete types), labelled
+    accuracy 1.0, Brier unpooled - pooled -0.0067 (SE 0.0074).
+    """
+    from poolbandit.classify import Calibration
+
+    design, rep0 = fast_study
+    reps = [rep0] + [_fast_replicate(design, seed) for seed in (7, 8)]
+    pooled = Calibration.combine([calibrate(r["pooled"], r["truth"]) for r in reps])
+    unpooled = Calibration.combine([calibrate(r["unpooled"], r["truth"]) for r in reps])
+    s = pooled.summary()
+    assert 0.85 <= s["coverage"] <= 0.95
+    assert s["reliability"] - s["reliability_chance"] <= 0.02
+    assert s["labelled_accuracy"] > 0.85  # labels at 0.8 are right far more often than chance (1/4)
+    d = (unpooled.per_participant_brier() - pooled.per_participant_brier()).to_numpy()
+    assert d.mean() > -2 * d.std(ddof=1) / np.sqrt(len(d))
+
+
+# --------------------------------------------------------------------------
+# The command line
+# --------------------------------------------------------------------------
+@pytest.fixture(scope="module")
+def cli_files(tmp_path_factory):
+    """A small simulated log (12 participants, unpooled Thompson sampling) with its design and an intake file."""
+    from poolbandit.log import write_log
+    from poolbandit.simulation import simulate
+    from poolbandit.spec import parse_design
+
+    root = tmp_path_factory.mktemp("cli")
+    text = SCENARIO.replace("size = 80", "size = 12")
+    design = parse_design(text)
+    (root / "design.toml").write_text(text, encoding="utf-8")
+    result = simulate(design, "solo", 5)
+    write_log(result.log, root / "log.csv")
+    names = [c.name for c in design.categories]
+    ids = result.population.ids
+    intake = pd.DataFrame({"participant": ids, "answer": [names[i % 4] for i in range(len(ids))]})
+    intake.loc[0, "answer"] = ""
+    intake.to_csv(root / "intake.csv", index=False)
+    return root, design
+
+
+def test_cli_classify_writes_tables_and_report(cli_files):
+    """Check the command's outputs: the documented columns, probabilities that sum to 1 per participant,
+    and a report whose figures are all embedded (PNG data URIs)."""
+    from poolbandit.cli.main import main
+
+    root, design = cli_files
+    out = root / "out"
+    rc = main(["classify", str(root / "log.csv"), "--design", str(root / "design.toml"), "--chains", "2",
+               "--draws", "60", "--tune", "30", "--seed", "3", "--intake", str(root / "intake.csv"),
+               "--intake-column", "answer", "--out", str(out)])
+    assert rc == 0
+    cats = pd.read_csv(out / "categories.csv")
+    assert list(cats.columns[:5]) == ["participant", "category", "probability", "mc_se", "exclusive_probability"]
+    assert "label" in cats.columns
+    sums = cats.groupby("participant")["exclusive_probability"].sum()
+    np.testing.assert_allclose(sums, 1.0, atol=1e-12)
+    eff = pd.read_csv(out / "effects.csv")
+    assert {"participant", "quantity", "mean", "hdi_low", "hdi_high"} <= set(eff.columns)
+    assert set(eff["quantity"]) == set(design.arms) | {"drill - story", "drill - roleplay", "story - roleplay"}
+    assert (eff["hdi_low"] <= eff["mean"]).all() and (eff["mean"] <= eff["hdi_high"]).all()
+    prev = pd.read_csv(out / "prevalence.csv")
+    assert set(prev["source"]) == {"studied participants", "new participant (population model)"}
+    conf = pd.read_csv(out / "agreement.csv", index_col=0)
+    assert conf.to_numpy().sum() == 11  # one participant has no intake answer
+    text = (out / "report.html").read_text(encoding="utf-8")
+    assert text.count('<img src="data:image/png;base64,') == 4  # forest, bars, shares, confusion
+
+
+@pytest.mark.parametrize("extra, message", [
+    (["--context", "weekend=1"], 'unknown feature "weekend"'),
+    (["--intake-column", "answer"], "--intake and --intake-column go together"),
+    (["--mass", "1.5"], "--mass: expected a number in"),
+])
+def test_cli_classify_bad_input_exits_2_and_writes_nothing(cli_files, capsys, extra, message):
+    """Check that bad arguments exit with status 2, name the offending value and leave no output."""
+    from poolbandit.cli.main import main
+
+    root, _ = cli_files
+    out = root / "bad-out"
+    rc = main(["classify", str(root / "log.csv"), "--design", str(root / "design.toml"), "--out", str(out), *extra])
+    assert rc == 2
+    assert message in capsys.readouterr().err
+    assert not out.exists()
+
+
+def test_cli_classify_bad_intake_names_row_and_value(cli_files, capsys, tmp_path):
+    """Check that an intake value outside the categories is reported with row, column and value."""
+    from poolbandit.cli.main import main
+
+    root, _ = cli_files
+    bad = tmp_path / "intake.csv"
+    bad.write_text("participant,answer\np001,drill-leaning\np002,sometimes\n", encoding="utf-8")
+    rc = main(["classify", str(root / "log.csv"), "--design", str(root / "design.toml"), "--intake", str(bad),
+               "--intake-column", "answer", "--out", str(tmp_path / "o")])
+    assert rc == 2
+    assert 'row 2, column answer: expected one of' in capsys.readouterr().err
