@@ -126,3 +126,25 @@ def test_bad_design_and_arguments_exit_2(files, capsys):
     with pytest.raises(SystemExit) as exc:  # argparse usage error
         _fit(files, "z", "--engine", "slow")
     assert exc.value.code == 2
+
+
+def test_fit_dispatcher_matches_the_engine_and_rejects_bad_calls(files):
+    """``models.fit`` on a StudyLog is the fast engine on ``ModelData.from_log`` with the
+    design's priors (same seed, same draws); bad calls raise with a clear message."""
+    from poolbandit.errors import InputError
+    from poolbandit.models.data import ModelData
+    from poolbandit.models.fit import fit
+    from poolbandit.models.gibbs import sample_fast
+
+    design = parse_design(DESIGN_TOML)
+    log = files[3]
+    a = fit(log, design, chains=1, draws=20, tune=5, rng=np.random.default_rng(1))
+    b = sample_fast(ModelData.from_log(log, design), design.priors, chains=1, draws=20, tune=5,
+                    rng=np.random.default_rng(1))
+    np.testing.assert_array_equal(a.posterior["theta"].to_numpy(), b.posterior["theta"].to_numpy())
+    with pytest.raises(InputError, match="needs its design"):
+        fit(log)
+    with pytest.raises(InputError, match="engine: expected one of 'fast', 'full', got 'slow'"):
+        fit(log, design, engine="slow")
+    with pytest.raises(ValueError, match="participants applies to a StudyLog"):
+        fit(ModelData.from_log(log, design), participants=["p001"])
