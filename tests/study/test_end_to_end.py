@@ -13,8 +13,8 @@ the randomisation probability of every decision is known and logged (common
 practice; Liao, Klasnja, Tewari and Murphy 2016, Statistics in Medicine 35,
 1944-1971).
 
-Then the downstream commands must take the export: ``poolbandit classify``
-(``poolbandit fit`` is added here once it exists).
+Then the downstream commands must take the export as is: ``poolbandit fit``
+and ``poolbandit classify``.
 """
 
 from __future__ import annotations
@@ -141,7 +141,11 @@ def test_28_day_study_with_waves_and_a_control_arm(tmp_path):
     assert db_state(db) == before
     st = _ok(cli("status", "--db", db))
     assert "finished: 30" in st.stdout and "missing an outcome: 0" in st.stdout
-    # downstream: the export feeds classification as is
+    # downstream: the export feeds fitting and classification as is
+    fitted = tmp_path / "fit"
+    _ok(poolbandit("fit", log_path, "--design", design_path, "--engine", "fast", "--chains", "1", "--draws", "200",
+                   "--out", fitted))
+    assert (fitted / "posterior.nc").exists() and (fitted / "diagnostics.csv").exists()
     out = tmp_path / "classification"
     _ok(poolbandit("classify", log_path, "--design", design_path, "--chains", "1", "--draws", "200", "--out", out))
     categories = pd.read_csv(out / "categories.csv")
