@@ -34,7 +34,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ..errors import InputError, LogError, format_value
+from ..errors import InputError, format_value
 from ..policies._catalogue import KINDS
 from ..spec import DesignSpec, PolicySpec, load_design, parse_design
 from . import replay
@@ -242,8 +242,7 @@ def init_study(design: str | Path, db: str | Path, *, policy: str | None = None)
     now = utc_now()
 
     def fill(conn: sqlite3.Connection) -> None:
-        batch = _new_batch(conn, "init", now, source=str(design), sha256=spec_design.sha256, rows=0)
-        del batch
+        _new_batch(conn, "init", now, source=str(design), sha256=spec_design.sha256, rows=0)
         conn.execute("INSERT INTO design (id, text, sha256, source, policy, seed, created) VALUES (1, ?, ?, ?, ?, ?, ?)",
                      (spec_design.source_text, spec_design.sha256, str(design), policy, str(seed), now))
 

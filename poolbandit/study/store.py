@@ -326,9 +326,13 @@ def create(path: str | os.PathLike, fill: Callable[[sqlite3.Connection], None], 
         finally:
             conn.close()
         try:
-            os.link(tmp, target)
+            os.link(tmp, target)  # atomic, and fails if target exists
         except FileExistsError:
             raise StoreError(f"{target}: a file already exists here; refusing to overwrite it") from None
+        except OSError:  # a file system without hard links: check, then rename (a small race remains)
+            if target.exists():
+                raise StoreError(f"{target}: a file already exists here; refusing to overwrite it") from None
+            os.replace(tmp, target)
     finally:
         for leftover in (tmp, Path(f"{tmp}-wal"), Path(f"{tmp}-shm")):
             if leftover.exists():
