@@ -651,3 +651,17 @@ def test_cli_classify_bad_intake_names_row_and_value(cli_files, capsys, tmp_path
                "--intake-column", "answer", "--out", str(tmp_path / "o")])
     assert rc == 2
     assert 'row 2, column answer: expected one of' in capsys.readouterr().err
+
+
+def test_blockwise_summaries_equal_one_pass(autocorrelated, monkeypatch):
+    """Check that processing participants in blocks (bounded memory) gives the same tables as one pass."""
+    import poolbandit.classify.posterior as post
+
+    whole = classify(autocorrelated, RULES)
+    original = post._blocks
+    monkeypatch.setattr(post, "_blocks", lambda s, n, w: original(s, n, w, budget=2 * s * w))  # two per block
+    assert len(post._blocks(2000, 5, 3)) == 3
+    parts = classify(autocorrelated, RULES)
+    pd.testing.assert_frame_equal(whole.probabilities, parts.probabilities, rtol=1e-12)
+    pd.testing.assert_frame_equal(whole.effects, parts.effects, rtol=1e-12)
+    pd.testing.assert_frame_equal(whole.labels, parts.labels, rtol=1e-12)

@@ -289,11 +289,16 @@ def classify(
 
     ind = category_indicators(effect, categories)  # (chain, draw, N, C)
     codes = exclusive_codes(ind)  # (chain, draw, N)
-    onehot = np.eye(n_cat + 1, dtype=bool)[codes.to_numpy()]  # (chain, draw, N, C+1)
-    marginal = np.concatenate([ind.to_numpy(), onehot[..., -1:]], axis=-1)  # the remainder is the same in both sets
-    n_match = ind.to_numpy().sum(axis=-1)
-    stacked = np.concatenate([marginal, onehot, (n_match >= 2)[..., None]], axis=-1).astype(float)
-    mean, mcse, _ = posterior_mean_mcse(stacked)  # (N, 2(C+1)+1)
+    iv, cv = ind.to_numpy(), codes.to_numpy()
+    parts = []
+    for block in _blocks(iv.shape[0] * iv.shape[1], len(participants), 2 * (n_cat + 1) + 1):
+        onehot = np.eye(n_cat + 1, dtype=bool)[cv[:, :, block]]  # (chain, draw, b, C+1)
+        marginal = np.concatenate([iv[:, :, block], onehot[..., -1:]], axis=-1)  # the remainder is in both sets
+        n_match = iv[:, :, block].sum(axis=-1)
+        stacked = np.concatenate([marginal, onehot, (n_match >= 2)[..., None]], axis=-1).astype(float)
+        parts.append(posterior_mean_mcse(stacked)[:2])
+    mean = np.concatenate([m for m, _ in parts])  # (N, 2(C+1)+1)
+    mcse = np.concatenate([e for _, e in parts])
     p_marg, se_marg = mean[:, : n_cat + 1], mcse[:, : n_cat + 1]
     p_ex, se_ex = mean[:, n_cat + 1: 2 * (n_cat + 1)], mcse[:, n_cat + 1: 2 * (n_cat + 1)]
     overlap = mean[:, -1]
@@ -346,6 +351,12 @@ def classify(
     )
 
 
+def _blocks(n_samples: int, n: int, width: int, *, budget: int = 2**24):
+    """Slices of participants whose (samples, block, width) arrays stay under ``budget`` elements."""
+    size = max(1, budget // max(1, n_samples * width))
+    return [slice(i, min(i + size, n)) for i in range(0, n, size)]
+
+
 def _effect_table(effect: xr.DataArray, categories: Sequence[CategorySpec], *, mass: float) -> pd.DataFrame:
     arms = [str(a) for a in effect["arm"].to_numpy()]
     pairs = rule_contrasts(categories, arms)
@@ -353,10 +364,16 @@ def _effect_table(effect: xr.DataArray, categories: Sequence[CategorySpec], *, m
     draws = np.concatenate([effect.to_numpy(), contrasts.to_numpy()], axis=-1)  # (chain, draw, N, Q)
     quantities = arms + [str(c) for c in contrasts["contrast"].to_numpy()]
     kinds = ["arm"] * len(arms) + ["contrast"] * len(pairs)
-    mean, mcse, _ = posterior_mean_mcse(draws)
-    flat = draws.reshape(-1, *draws.shape[2:])
-    sd = flat.std(axis=0, ddof=1) if len(flat) > 1 else np.full(mean.shape, np.nan)
-    low, high = hdi_table(draws, mass=mass)
+    cols: list[list[np.ndarray]] = [[], [], [], [], []]
+    for block in _blocks(draws.shape[0] * draws.shape[1], draws.shape[2], draws.shape[3]):
+        sub = draws[:, :, block]
+        m, se, _ = posterior_mean_mcse(sub)
+        flat = sub.reshape(-1, *sub.shape[2:])
+        sd = flat.std(axis=0, ddof=1) if len(flat) > 1 else np.full(m.shape, np.nan)
+        lo, hi = hdi_table(sub, mass=mass)
+        for store, value in zip(cols, (m, se, sd, lo, hi)):
+            store.append(value)
+    mean, mcse, sd, low, high = (np.concatenate(c) for c in cols)
     n, q = mean.shape
     return pd.DataFrame({
         "participant": np.repeat([str(p) for p in effect["participant"].to_numpy()], q),
@@ -373,8 +390,8 @@ def _effect_table(effect: xr.DataArray, categories: Sequence[CategorySpec], *, m
 def _shares(ind: xr.DataArray, codes: xr.DataArray, names: list[str], *, mass: float, source: str) -> pd.DataFrame:
     """Shares of each category among participants, draw by draw, summarised over draws."""
     n_cat = len(names) - 1
-    onehot = np.eye(n_cat + 1)[codes.to_numpy()]  # (chain, draw, N, C+1)
-    ex = onehot.mean(axis=2)
+    cv = codes.to_numpy()
+    ex = np.stack([(cv == j).mean(axis=2) for j in range(n_cat + 1)], axis=-1)  # (chain, draw, C+1)
     marg = np.concatenate([ind.to_numpy().mean(axis=2), ex[..., -1:]], axis=-1)
     rows = []
     for set_name, draws in (("exclusive", ex), ("marginal", marg)):

@@ -124,7 +124,7 @@ def exclusive_codes(indicators: xr.DataArray) -> xr.DataArray:
     """
     ind = indicators.transpose(..., "category")
     v = ind.to_numpy()
-    code = np.where(v.any(axis=-1), v.argmax(axis=-1), v.shape[-1])
+    code = np.where(v.any(axis=-1), v.argmax(axis=-1), v.shape[-1]).astype(np.int16)
     return xr.DataArray(code, dims=ind.dims[:-1], coords={d: ind[d] for d in ind.dims[:-1] if d in ind.coords},
                         name="exclusive")
 
