@@ -143,7 +143,7 @@ def _scale_values(values: np.ndarray, scale: str | None, outcome: str) -> np.nda
     return expit(values) if scale == "probability" else values
 
 
-def gaussian_conditional(A: np.ndarray, b: np.ndarray, m: np.ndarray, L: np.ndarray):
+def _gaussian_conditional(A: np.ndarray, b: np.ndarray, m: np.ndarray, L: np.ndarray):
     """Mean and covariance of ``theta`` with prior ``N(m, L L')`` and likelihood ``exp(-theta'A theta/2 + b'theta)``.
 
     Batched over leading axes: ``A`` (..., d, d), ``b`` and ``m`` (..., d),
@@ -189,8 +189,18 @@ class _PopulationDraw:
 class PooledThompsonPolicy(Policy):
     """Thompson sampling from the partially pooled hierarchical posterior.
 
-    Parameters (design keys, see :data:`~poolbandit.policies._catalogue.KINDS`)
-    -------------------------------------------------------------------------
+    Parameters
+    ----------
+    spec : PolicySpec
+        The named policy; its parameters (design keys, validated by
+        :data:`~poolbandit.policies._catalogue.KINDS`) are listed below.
+    design : DesignSpec
+        Arms, features, covariates, outcome and ``[priors]`` of the model.
+    truth : Population, optional
+        Ignored (this kind never reads the truth).
+
+    Other Parameters
+    ----------------
     sweeps : int, default=5
         Gibbs sweeps per decision step after new rewards arrived (warm start).
     population_draws : int, default=4
@@ -303,9 +313,9 @@ class PooledThompsonPolicy(Policy):
         if draw.L is None:
             L = np.zeros((k, d, d))
             L[:, np.arange(d), np.arange(d)] = draw.tau.reshape(k, d)
-            mean, cov = gaussian_conditional(draw.A[participant], draw.b[participant], m.reshape(n, k, d), L)
+            mean, cov = _gaussian_conditional(draw.A[participant], draw.b[participant], m.reshape(n, k, d), L)
             return mean.reshape(n, -1), cov
-        return gaussian_conditional(draw.A[participant], draw.b[participant], m, draw.L)
+        return _gaussian_conditional(draw.A[participant], draw.b[participant], m, draw.L)
 
     def arm_value_moments(self, draw: _PopulationDraw, participant: np.ndarray, context: np.ndarray):
         """Mean (n, K) and covariance (n, K) variances or (n, K, K) of the arm values in ``context``."""
