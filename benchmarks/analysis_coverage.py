@@ -11,11 +11,14 @@ latent types, unpooled Thompson sampling clipped to [0.05, 0.9]):
    the stand-in model alone;
 2. the same for the off-policy values of uniform random and of the oracle;
 3. the ratio of each estimator's sd to IPW's, side by side;
-4. with ``--hierarchical R``, the doubly robust estimate with the
+4. with ``--pooled R``, sections 1 and 2 again for logs of pooled Thompson
+   sampling (clipped to [0.05, 0.9]), R replicates simulated one by one;
+5. with ``--hierarchical R``, the doubly robust estimate with the
    hierarchical model (fast engine) as outcome model, on R replicates (each
    needs one Gibbs run, so keep R small).
 
-Run: ``.venv/bin/python benchmarks/analysis_coverage.py [--replicates 500] [--seed 1] [--hierarchical 20]``.
+Run: ``.venv/bin/python benchmarks/analysis_coverage.py [--replicates 500] [--seed 1] [--pooled 100]
+[--hierarchical 20]``.
 """
 
 from __future__ import annotations
@@ -31,6 +34,7 @@ import pandas as pd
 from poolbandit import load_design
 from poolbandit.analysis import arm_values, hierarchical_outcome_model, policy_values, ridge_outcome_model
 from poolbandit.analysis._montecarlo import replicate_studies, summarise_replicates
+from poolbandit.cli._common import show_progress
 from poolbandit.errors import OverlapWarning
 
 warnings.filterwarnings("ignore", message=".*ArviZ is undergoing a major refactor.*")
@@ -81,6 +85,7 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--replicates", type=int, default=500)
     parser.add_argument("--size", type=int, default=40)
     parser.add_argument("--seed", type=int, default=20261203)
+    parser.add_argument("--pooled", type=int, default=0, help="replicates under pooled Thompson sampling")
     parser.add_argument("--hierarchical", type=int, default=0, help="replicates with the hierarchical model")
     args = parser.parse_args(argv)
     pd.set_option("display.width", 160)
@@ -102,6 +107,16 @@ def main(argv: list[str] | None = None) -> None:
     print("\nPolicy values")
     s = _with_ratio(summarise_replicates(pols, by=["policy", "estimator"]), "policy")
     print(s.round(4).to_string(index=False))
+
+    if args.pooled:
+        t3 = time.perf_counter()
+        preps = replicate_studies(design, "pooled", args.pooled, args.size, args.seed + 1, progress=show_progress())
+        arms_p, pols_p = estimate_tables(design, preps, models)
+        t4 = time.perf_counter()
+        print(f"\nPooled Thompson sampling, {args.pooled} replicates, {t4 - t3:.1f} s")
+        print(_with_ratio(summarise_replicates(arms_p, by=["arm", "estimator"]), "arm").round(4).to_string(index=False))
+        print(_with_ratio(summarise_replicates(pols_p, by=["policy", "estimator"]), "policy").round(4)
+              .to_string(index=False))
 
     if args.hierarchical:
         sub = reps[: args.hierarchical]

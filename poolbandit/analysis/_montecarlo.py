@@ -1,11 +1,12 @@
 """Monte Carlo checks of the analysis estimators against the simulated truth (tests and benchmarks).
 
 :func:`replicate_studies` runs ``R`` independent studies of ``size``
-participants in one simulation of ``R * size`` participants. This is exact
+participants. For per-participant policies it runs them as one simulation of
+``R * size`` participants split into groups. This is exact
 for policies that treat every participant alone (random, unpooled Thompson,
 UCB1, the greedy rules with ``pool = "person"``), whose decisions for one
 participant never depend on another's data, and for designs with one
-enrolment wave; a pooled policy would need one simulation per replicate.
+enrolment wave; a pooled policy gets one simulation per replicate.
 """
 
 from __future__ import annotations
@@ -15,7 +16,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from .._random import RngLike
+from .._random import RngLike, spawn
 from ..simulation import simulate
 from ._prepare import Prepared, prepare
 
@@ -55,13 +56,33 @@ class Replicate:
         return argmax_ties(self.expected)
 
 
-def replicate_studies(design, policy: str, replicates: int, size: int, rng: RngLike = None) -> list[Replicate]:
-    """``replicates`` independent simulated studies of ``size`` participants each (see module docstring)."""
-    if design.policy(policy).kind not in {"random", "thompson", "ucb1", "epsilon-greedy", "epsilon-decreasing"}:
-        raise ValueError("replicate_studies batches participants: only per-participant policies qualify")
-    if design.population.waves != 1:
-        raise ValueError("replicate_studies needs a design with one enrolment wave")
-    res = simulate(design, policy, rng, size=replicates * size)
+#: Policy kinds that decide for each participant from that participant's data alone.
+_PER_PARTICIPANT = {"random", "thompson", "ucb1", "epsilon-greedy", "epsilon-decreasing"}
+
+
+def replicate_studies(design, policy: str, replicates: int, size: int, rng: RngLike = None, *,
+                      progress: bool = False) -> list[Replicate]:
+    """``replicates`` independent simulated studies of ``size`` participants each.
+
+    Per-participant policies on a one-wave design are batched into one
+    simulation (see the module docstring); any other policy (pooled ones) is
+    simulated once per replicate, each with a seed spawned from ``rng``.
+    """
+    if design.policy(policy).kind in _PER_PARTICIPANT and design.population.waves == 1:
+        res = simulate(design, policy, rng, size=replicates * size)
+        return _split(design, res, size, replicates)
+    out = []
+    gens = spawn(rng, replicates)
+    if progress:
+        from tqdm import tqdm
+
+        gens = tqdm(gens, desc=f"simulating {policy}", leave=False)
+    for g in gens:
+        out += _split(design, simulate(design, policy, g, size=size), size, 1)
+    return out
+
+
+def _split(design, res, size: int, replicates: int) -> list[Replicate]:
     log = res.log
     pop = res.population
     code = pd.Index(pop.ids).get_indexer(log["participant"])

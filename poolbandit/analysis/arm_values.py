@@ -69,7 +69,6 @@ References
 
 from __future__ import annotations
 
-from typing import Mapping
 
 import numpy as np
 import pandas as pd

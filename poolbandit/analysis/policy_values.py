@@ -110,7 +110,9 @@ def replay_probabilities(log: pd.DataFrame, design, policy: str, *, rng: RngLike
     policy : str
         A policy name of the design.
     rng : Generator, int or None
-        For policies whose probabilities are Monte Carlo estimates.
+        For policies whose probabilities are Monte Carlo estimates (the
+        pooled policies' Gibbs draws): their replayed table is then one
+        realisation of the policy's randomised rule, not the logged one.
 
     Returns
     -------

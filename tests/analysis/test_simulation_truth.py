@@ -22,7 +22,6 @@ The policy is unpooled Thompson sampling clipped to [0.05, 0.9] (adaptive and
 with exact propensities).
 """
 
-import numpy as np
 import pytest
 
 from poolbandit.analysis._montecarlo import summarise_replicates
