@@ -20,8 +20,9 @@ def test_all_names_exist_and_are_public(name):
 
 def test_docstrings_name_the_sources():
     """The estimator modules cite their methods (style rule: References for methods from papers)."""
-    import poolbandit.analysis.arm_values as av
-    import poolbandit.analysis.run as run
+    # the package re-exports the function arm_values, which shadows the module attribute: use sys.modules
+    av = importlib.import_module("poolbandit.analysis.arm_values")
+    run = importlib.import_module("poolbandit.analysis.run")
 
     for source in ("Horvitz", "Robins, J. M., Rotnitzky, A. and Zhao", "Dudik, M., Langford, J. and Li",
                    "Nie, X., Tian, X., Taylor, J. and Zou", "Hadad, V., Hirshberg, D. A., Zhan, R., Wager"):
