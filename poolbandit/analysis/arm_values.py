@@ -49,7 +49,7 @@ References
    American Statistical Association* 47, 663-685. doi:10.1080/01621459.1952.10483446
 .. [2] Hajek, J. (1971). Comment on "An essay on the logical foundations of
    survey sampling" by D. Basu. In *Foundations of Statistical Inference*,
-   Holt, Rinehart and Winston, p. 236.
+   Holt, Rinehart and Winston, p. 236 (citation details from memory).
 .. [3] Robins, J. M., Rotnitzky, A. and Zhao, L. P. (1994). Estimation of
    regression coefficients when some regressors are not always observed.
    *Journal of the American Statistical Association* 89, 846-866.
