@@ -74,7 +74,9 @@ References
 
 from __future__ import annotations
 
+import inspect
 import logging
+import os
 from collections import OrderedDict
 from dataclasses import dataclass
 from typing import Any
@@ -151,7 +153,7 @@ def sample_full(
         Extra arguments for :func:`pymc.sample` (copied), for example
         ``{"cores": 1}``; NUTS settings ``max_treedepth``, ``step_scale``,
         ``early_max_treedepth`` and ``adapt_step_size`` go to the step. Default
-        ``cores`` is ``min(chains, 2)``.
+        ``cores`` is ``min(chains, os.cpu_count())`` (chains in parallel processes).
 
     Returns
     -------
@@ -190,12 +192,17 @@ def sample_full(
     if own:
         raise ValueError(f"sample_kwargs may not set {own}: they are arguments of sample_full")
     nuts = {k: kwargs.pop(k) for k in _STEP_KEYS if k in kwargs}
-    kwargs.setdefault("cores", min(chains, 2))
+    kwargs.setdefault("cores", min(chains, os.cpu_count() or 1))
     kwargs.setdefault("compute_convergence_checks", False)
-    kwargs.setdefault("quiet", not progress)
+    if "quiet" in inspect.signature(pm.sample).parameters:  # PyMC >= 5.2x
+        kwargs.setdefault("quiet", not progress)
 
     compiled = _compiled_for(data, priors, target_accept, nuts)
     pm.set_data(_data_values(data), model=compiled.model)
+    # A reused step must start like a new one: PyMC resets tuning for sequential
+    # chains but hands parallel workers the step as it is (adapted mass matrix,
+    # step size and "tuning finished" from the previous fit).
+    compiled.step.reset_tuning()
     seed = int(rng.integers(0, 2**31 - 1))
     initvals = [_jittered(compiled.start, rng) for _ in range(chains)]
     logger = logging.getLogger("pymc")
@@ -302,7 +309,8 @@ def _build_model(data: ModelData, priors: PriorSpec):
         if n_cov:
             W = pm.Data("W", values["W"])
             gamma = pm.Normal("gamma", 0.0, priors.gamma_sd, dims=("coef", "covariate"))
-            theta = theta + pt.dot(W, gamma.T)
+            # elementwise products, not dot: tiny matrices, and no BLAS needed
+            theta = theta + (W[:, None, :] * gamma[None, :, :]).sum(axis=-1)
             var_names.insert(1, "gamma")
         if n_rand:
             z = pm.Normal("z", 0.0, 1.0, dims=("participant", "random_coef"))
@@ -314,7 +322,7 @@ def _build_model(data: ModelData, priors: PriorSpec):
                 # the correlation matrix over all coefficients: identity outside the random block
                 pm.Deterministic("corr", pt.set_subtensor(pt.eye(n_coef)[np.ix_(rand, rand)], corr),
                                  dims=("coef", "coef_"))
-                tau_r, dev = stds, pt.dot(z, chol.T)
+                tau_r, dev = stds, (z[:, None, :] * chol[None, :, :]).sum(axis=-1)  # b_i = L z_i
             else:
                 every = n_rand == n_coef
                 tau_r = _tau_prior(priors, "tau" if every else "tau_random", dims="coef" if every else "random_coef")
