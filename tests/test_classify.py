@@ -665,3 +665,27 @@ def test_blockwise_summaries_equal_one_pass(autocorrelated, monkeypatch):
     pd.testing.assert_frame_equal(whole.probabilities, parts.probabilities, rtol=1e-12)
     pd.testing.assert_frame_equal(whole.effects, parts.effects, rtol=1e-12)
     pd.testing.assert_frame_equal(whole.labels, parts.labels, rtol=1e-12)
+
+
+def test_posterior_kappa_draw_by_draw(hand_built):
+    """Check the draw-by-draw kappa against statsmodels' cohens_kappa of each draw's own table
+    (rows: the draw's exclusive category, the no-rule remainder as an extra row and column)."""
+    from statsmodels.stats.inter_rater import cohens_kappa as sm_kappa
+
+    rng = np.random.default_rng(6)
+    values = hand_built.to_numpy()[:, :, [0, 1] * 4, :] + 0.0  # 8 participants: A, B, A, B, ...
+    values = values + rng.normal(0, 0.05, size=values.shape)
+    ids = [f"r{i}" for i in range(8)]
+    c = classify(_effect(values, ids), RULES, mass=0.5)
+    names = [r.name for r in RULES]
+    intake = pd.Series([names[i % 3] for i in range(8)], index=ids)
+    a = agreement(c, intake)
+    codes = c.exclusive.to_numpy()[0]
+    answer = np.array([i % 3 for i in range(8)])
+    ref = []
+    for s in range(codes.shape[0]):
+        t = np.zeros((4, 4))
+        np.add.at(t, (codes[s], answer), 1)
+        ref.append(sm_kappa(t, return_results=False))
+    assert a.posterior_kappa["mean"] == pytest.approx(np.mean(ref), abs=1e-12)
+    assert a.posterior_kappa["low"] <= a.posterior_kappa["mean"] <= a.posterior_kappa["high"]

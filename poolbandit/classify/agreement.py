@@ -83,12 +83,19 @@ class Agreement:
         Participants with an intake answer but no posterior label.
     n_missing : int
         Participants of the classification without an intake answer.
+    posterior_kappa : dict
+        Kappa computed draw by draw between each draw's exclusive category
+        (draws matching no rule count as disagreement) and the intake answer,
+        over every participant with an answer: ``mean``, ``low``, ``high``
+        (HDI at the classification's mass). It carries the uncertainty of the
+        categories themselves, which the labels' kappa ignores.
     """
 
     table: pd.DataFrame
     kappa: Kappa
     n_undetermined: int
     n_missing: int
+    posterior_kappa: dict
 
 
 def cohens_kappa(table, *, level: float = 0.95) -> Kappa:
@@ -176,7 +183,28 @@ def agreement(classification, intake: pd.Series | Mapping[str, str], *, level: f
     square = table.loc[names, names].to_numpy()
     kappa = cohens_kappa(square, level=level)
     n_missing = int((~labels.index.isin(intake.index)).sum())
-    return Agreement(table, kappa, int(table.loc[UNDETERMINED].sum()), n_missing)
+    return Agreement(table, kappa, int(table.loc[UNDETERMINED].sum()), n_missing,
+                     _posterior_kappa(classification, intake, names))
+
+
+def _posterior_kappa(classification, intake: pd.Series, names: list[str]) -> dict:
+    """Cohen's kappa of every posterior draw's exclusive categories against the intake answers."""
+    from .posterior import hdi_table
+
+    ids = [p for p in classification.participants if p in intake.index]
+    if not ids:
+        return {"mean": float("nan"), "low": float("nan"), "high": float("nan"), "n": 0}
+    pos = pd.Index(classification.participants).get_indexer(ids)
+    codes = classification.exclusive.to_numpy()[:, :, pos]  # (chain, draw, n); len(names) = no rule
+    answer = pd.Index(names).get_indexer(intake.loc[ids].to_numpy())  # (n,)
+    p_o = (codes == answer).mean(axis=-1)
+    col = np.bincount(answer, minlength=len(names) + 1) / len(ids)
+    row = np.stack([(codes == j).mean(axis=-1) for j in range(len(names) + 1)], axis=-1)
+    p_e = row @ col
+    with np.errstate(invalid="ignore", divide="ignore"):
+        k = (p_o - p_e) / (1 - p_e)
+    low, high = hdi_table(k[..., None], mass=classification.mass)
+    return {"mean": float(np.nanmean(k)), "low": float(low[0]), "high": float(high[0]), "n": len(ids)}
 
 
 def read_intake(path: str | Path, column: str, names: Sequence[str], *,

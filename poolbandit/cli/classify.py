@@ -159,8 +159,10 @@ def run(args: argparse.Namespace) -> int:
         print(line)
     if agree is not None:
         k = agree.kappa
-        print(f"agreement with intake ({k.n} participants): kappa {k.kappa:.3f} "
-              f"[{k.low:.3f}, {k.high:.3f}]")
+        pk = agree.posterior_kappa
+        print(f"agreement with intake: kappa of labels {k.kappa:.3f} [{k.low:.3f}, {k.high:.3f}] over {k.n} "
+              f"labelled participants; draw by draw {pk['mean']:.3f} [{pk['low']:.3f}, {pk['high']:.3f}] over "
+              f"{pk['n']}")
     written = ["categories.csv", "effects.csv", "prevalence.csv"] + (["agreement.csv"] if agree else []) \
         + ["report.html"]
     print("wrote " + ", ".join(str(out / w) for w in written))

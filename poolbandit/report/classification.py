@@ -84,7 +84,11 @@ def classification_page(classification, *, title: str = "Participant categories"
             f"Cohen's kappa over the {k.n} participants with both a posterior label and an intake category: "
             f"{k.kappa:.3f} ({k.level:.0%} confidence interval {k.low:.3f} to {k.high:.3f}; observed agreement "
             f"{k.observed:.3f}, chance agreement {k.expected:.3f}). {agreement.n_undetermined} participants with "
-            f"an intake answer have no posterior label; {agreement.n_missing} have no intake answer.")
+            f"an intake answer have no posterior label; {agreement.n_missing} have no intake answer. "
+            f"Computed draw by draw over all {agreement.posterior_kappa['n']} participants with an answer, so that "
+            f"the uncertainty of the categories counts, kappa is {agreement.posterior_kappa['mean']:.3f} "
+            f"({c.mass:.0%} credible interval {agreement.posterior_kappa['low']:.3f} to "
+            f"{agreement.posterior_kappa['high']:.3f}).")
         page.figure(confusion_heatmap(agreement.table), caption="Posterior label (rows) by intake category "
                                                                 "(columns).")
         page.table(agreement.table, index=True, caption="Confusion table")
