@@ -1,7 +1,24 @@
-"""The hierarchical model: data, coefficient layout, the fast Gibbs engine and arm effects."""
+"""The hierarchical model: data, coefficient layout, the two engines, fitting and arm effects.
+
+``fit`` (the one way to fit), ``sample_full`` (PyMC NUTS) and ``diagnostics_table``
+are imported lazily, so importing this package does not import PyMC.
+"""
+
+from importlib import import_module
 
 from .data import ModelData
 from .effects import arm_effects, context_vector
 from .gibbs import GibbsSampler, GibbsState, sample_fast
 
-__all__ = ["ModelData", "GibbsSampler", "GibbsState", "sample_fast", "arm_effects", "context_vector"]
+__all__ = [
+    "ModelData", "GibbsSampler", "GibbsState", "sample_fast", "sample_full", "fit", "diagnostics_table",
+    "arm_effects", "context_vector",
+]
+
+_LAZY = {"fit": ".fit", "sample_full": ".pymc_engine", "diagnostics_table": ".diagnostics"}
+
+
+def __getattr__(name: str):
+    if name in _LAZY:
+        return getattr(import_module(_LAZY[name], __name__), name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
