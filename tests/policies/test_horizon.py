@@ -333,3 +333,111 @@ def test_bayes_optimal_value_agrees_with_simulation_of_the_policy():
     se = r.std(ddof=1) / np.sqrt(len(r))
     expected = res.policy.solution.regret((0.0, 0.3))
     assert abs(r.mean() - expected) < 4 * se, (r.mean(), expected, se)
+
+
+# -- scenario targets (smaller seeded versions of benchmarks/horizon_policies.py) ----------------
+def _bench():
+    import sys
+    from pathlib import Path
+
+    path = str(Path(__file__).resolve().parents[2] / "benchmarks")
+    if path not in sys.path:
+        sys.path.insert(0, path)
+    import horizon_policies
+
+    return horizon_policies
+
+
+#: Every scenario test uses 5 replicates with common random numbers (the benchmark uses 12);
+#: a ratio of paired means then has a standard error of about 0.03 to 0.06 (printed by the benchmark).
+_REPLICATES = 5
+_SEED = 20261220
+
+
+def _regrets(key, pooled):
+    hp = _bench()
+    table = {**hp.CLASSIC, **pooled}
+    res = hp.collect(key, _REPLICATES, _SEED, 1, policies=table)
+    return {n: v["regret"] for n, v in res.items()}
+
+
+def _best(reg, names):
+    return min(names, key=lambda n: reg[n].mean())
+
+
+def _ratio(reg, num, den):
+    return reg[num].mean() / reg[den].mean()
+
+
+#: the rules the benchmark found best (default floor p_min = 0.02) and the recommended rule without floor
+_RULES = {"pooled-greedy": 'kind = "pooled-greedy"',
+          "pooled-kg-lookahead": 'kind = "pooled-knowledge-gradient"\nlookahead = 40'}
+_NO_FLOOR = {"pooled-greedy-p0": 'kind = "pooled-greedy"\np_min = 0.0',
+             "pooled-kg-lookahead-p0": 'kind = "pooled-knowledge-gradient"\nlookahead = 40\np_min = 0.0'}
+
+
+def _scenario_ratio(key, *, reference=None):
+    extra = {"pooled-thompson": 'kind = "pooled-thompson"'} if reference == "pooled-thompson" else {}
+    reg = _regrets(key, {**extra, **_RULES})
+    best = _best(reg, list(_RULES))
+    ref = reference or _best(reg, list(_bench().CLASSIC))
+    return _ratio(reg, best, ref), best, ref
+
+
+def test_scenario_a_beats_pooled_thompson():
+    """Scenario A (N 60, K 3, T 21, heterogeneity 0.5): the best horizon-aware pooled rule has at
+    most 0.80 x the regret of pooled Thompson sampling (the lead's target; benchmark with 12
+    replicates: 0.758, se 0.042)."""
+    r, best, ref = _scenario_ratio("A", reference="pooled-thompson")  # this seeded version: 0.774
+    assert r <= 0.80, (r, best, ref)
+
+
+@pytest.mark.xfail(strict=True, reason="target not met: this seeded version 0.871; benchmark (12 replicates) "
+                                       "0.964 (se 0.061) with p_min 0.02, 0.926 (se 0.058) with p_min 0")
+def test_scenario_a_beats_tuned_classic():
+    """Scenario A: best horizon-aware pooled rule <= 0.85 x the best tuned classic policy (greedy,
+    epsilon-greedy 0.05/0.1, UCB1 c in {0.1, 0.25, 0.5, 1}, tuned on the same replicates)."""
+    r, best, ref = _scenario_ratio("A")
+    assert r <= 0.85, (r, best, ref)
+
+
+@pytest.mark.xfail(strict=True, reason="target not met by the default rules: this seeded version 0.351; benchmark "
+                                       "(12 replicates) 0.40 for pooled-greedy, 0.296 (se 0.032) only for "
+                                       "pooled-greedy with explore_first = 1")
+def test_scenario_d_low_heterogeneity():
+    """Scenario D (heterogeneity 0.15): best horizon-aware pooled rule <= 0.30 x the best tuned
+    classic (benchmark: 0.296, se 0.032, for pooled-greedy with explore_first = 1; 0.40 for the
+    rules without forced exploration)."""
+    r, best, ref = _scenario_ratio("D")
+    assert r <= 0.30, (r, best, ref)
+
+
+@pytest.mark.xfail(strict=True, reason="target not met with the default floor p_min = 0.02: this seeded version "
+                                       "1.204; benchmark 1.173 (se 0.052); with p_min = 0 it is met (1.002)")
+def test_scenario_e_high_heterogeneity():
+    """Scenario E (heterogeneity 1.0): best horizon-aware pooled rule never more than 1.05 x the
+    best tuned classic (benchmark: 1.173, se 0.052, with p_min 0.02; 1.002 with p_min 0)."""
+    r, best, ref = _scenario_ratio("E")
+    assert r <= 1.05, (r, best, ref)
+
+
+@pytest.mark.xfail(strict=True, reason="target not met: this seeded version 1.098; benchmark 1.165 (se 0.032) "
+                                       "with p_min = 0.02, 1.107 (se 0.033) with p_min = 0")
+def test_scenario_f_four_equal_arms():
+    """Scenario F (N 80, K 4, T 28, equal arm means, heterogeneity 0.4): best horizon-aware pooled
+    rule never more than 1.05 x the best tuned classic (benchmark: 1.165, se 0.032, with p_min
+    0.02; 1.107 with p_min 0)."""
+    r, best, ref = _scenario_ratio("F")
+    assert r <= 1.05, (r, best, ref)
+
+
+def test_two_arm_limit():
+    """Two-arm A (means 0, 0.3, heterogeneity 0.5, T 21): against the Bayes-optimal policy (which has
+    no floor, so the rules are compared without one too: p_min = 0), the oracle-prior lookahead
+    rule is within 1.03 x and the best pooled rule within 1.25 x (benchmark, 12 replicates: 0.994
+    (se 0.020) and 1.202 (se 0.063); with the default floor 1.081 and 1.254, printed there)."""
+    reg = _regrets("A2", {**_NO_FLOOR, "bayes-optimal": 'kind = "bayes-optimal"',
+                          "oracle-kg-lookahead-p0": 'kind = "oracle-prior-knowledge-gradient"\nlookahead = 40\n'
+                                                    'p_min = 0.0'})
+    assert _ratio(reg, "oracle-kg-lookahead-p0", "bayes-optimal") <= 1.03
+    assert _ratio(reg, _best(reg, list(_NO_FLOOR)), "bayes-optimal") <= 1.25
