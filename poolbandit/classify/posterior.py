@@ -144,11 +144,12 @@ class Classification:
         return bool((self.labels["overlap_probability"] > 0).any())
 
     def table(self) -> pd.DataFrame:
-        """The ``categories.csv`` table: probabilities with each participant's label."""
-        out = self.probabilities.merge(self.labels[["participant", "label"]], on="participant", how="left",
-                                       validate="many_to_one")
+        """The ``categories.csv`` table: probabilities with each participant's label and the probability
+        that a draw matches two or more rules (``overlap_probability``, 0 for exclusive rules)."""
+        out = self.probabilities.merge(self.labels[["participant", "label", "overlap_probability"]],
+                                       on="participant", how="left", validate="many_to_one")
         return out[["participant", "category", "probability", "mc_se", "exclusive_probability",
-                    "exclusive_mc_se", "label"]]
+                    "exclusive_mc_se", "label", "overlap_probability"]]
 
     def label_counts(self) -> pd.Series:
         """How many participants carry each label (every category and ``undetermined``)."""

@@ -5,7 +5,7 @@ posterior into every participant's arm effects in the chosen context, applies
 the design's ``[[categories]]`` and writes
 
 * ``categories.csv``: participant, category, probability, mc_se,
-  exclusive_probability, exclusive_mc_se, label;
+  exclusive_probability, exclusive_mc_se, label, overlap_probability;
 * ``effects.csv``: participant, quantity (arm or contrast ``A - B``), kind,
   mean, sd, mc_se, hdi_low, hdi_high;
 * ``prevalence.csv``: source, set, category, share, mc_se, low, high;
