@@ -28,7 +28,7 @@ from poolbandit.policies.horizon import (
     knowledge_gradient,
     mixture_quantile,
 )
-from poolbandit.simulation import draw_population, draw_streams, replicate_metrics, run_policy
+from poolbandit.simulation import draw_population, draw_streams, run_policy
 
 THREE = """
 [study]
