@@ -225,7 +225,9 @@ def compare(
         Study sizes (participants in both groups together) for the power of
         the two-group study; None skips power.
     power_policy : str, optional
-        The adaptive condition's policy (default: the reference policy).
+        The adaptive condition's policy (default: the reference policy, or
+        the first compared policy not of kind ``random`` when the reference
+        is random).
     power_replicates : int, optional
         Simulated studies per size (default: ``replicates``).
     alpha : float, default=0.05
@@ -270,7 +272,11 @@ def compare(
     if scorer == "default":
         scorer = ClassificationScorer()
     sizes = check_sizes(power_sizes) if power_sizes is not None else None
-    power_policy = _resolve(design, names, power_policy, "", "power-policy") if power_policy else reference
+    if power_policy is not None:
+        power_policy = _resolve(design, names, power_policy, "", "power-policy")
+    else:
+        adaptive = [n for n in names if design.policies[n].kind != "random"]
+        power_policy = reference if design.policies[reference].kind != "random" or not adaptive else adaptive[0]
     power_replicates = replicates if power_replicates is None else power_replicates
     if sizes is not None and (isinstance(power_replicates, bool) or power_replicates < 2):
         raise InputError(f"--power-replicates: expected an integer >= 2, got {power_replicates!r}")

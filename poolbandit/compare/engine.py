@@ -347,18 +347,14 @@ class DaskExecutor(Executor):
         return self._n_workers() * self.batches_per_worker
 
     def _run(self, fn, shared, batches, bar):
-        from dask.distributed import as_completed as dask_completed
-
         shared_future = self.client.scatter(shared, broadcast=True, hash=False)
         futures = [self.client.submit(_run_batch, fn, shared_future, batch, pure=False) for batch in batches]
-        index = {f.key: j for j, f in enumerate(futures)}
-        results: list[list[Any] | None] = [None] * len(batches)
+        results: list[list[Any]] = []
         try:
-            for fut in dask_completed(futures):
-                j = index[fut.key]
-                results[j] = fut.result()
+            for fut, batch in zip(futures, batches):  # in order: the bar moves as the earliest batches finish
+                results.append(fut.result())
                 if bar is not None:
-                    bar.update(len(batches[j]))
+                    bar.update(len(batch))
         finally:
             for f in futures:
                 f.release()
