@@ -28,6 +28,7 @@ _COMMANDS = [
     "study",
     "analyse",
     "fit",
+    "compare",
 ]
 
 
