@@ -15,6 +15,9 @@ Thompson sampling (policy kind ``pooled-thompson``). Each replicate then
    the true effects): Brier score with Murphy's decomposition, coverage of
    the 90% effect intervals, share and accuracy of labels.
 
+``--population normal`` replaces the types by normal heterogeneity (arm
+means 2.5, 2.4, 2.4; sd 0.3), the population the hierarchical model assumes.
+
 Printed: the pooled-over-replicates scores of both, the paired difference of
 Brier scores (unpooled minus pooled) with its standard error over
 replicates, and the targets: reliability <= 0.02, coverage in [0.85, 0.95],
@@ -114,10 +117,22 @@ within = 0.2
 """
 
 
-def scenario_design(*, size: int | None = None):
-    """The benchmark design (optionally with another population size)."""
+def scenario_design(*, size: int | None = None, population: str = "types"):
+    """The benchmark design (optionally with another population size).
+
+    ``population="types"``: the four latent types (the hierarchical model's
+    normal population is then misspecified); ``"normal"``: no types, arm means
+    (2.5, 2.4, 2.4) with normal heterogeneity 0.3 per arm, which the model
+    describes exactly.
+    """
     text = SCENARIO if size is None else SCENARIO.replace("size = 80", f"size = {size}")
-    return parse_design(text, source="<classification calibration scenario>")
+    if population == "normal":
+        head, tail = text.split("[[population.types]]", 1)
+        text = head.replace("arm_sd = [0.25, 0.25, 0.25]", "arm_means = [2.5, 2.4, 2.4]\narm_sd = [0.3, 0.3, 0.3]") \
+            + "[priors]" + tail.split("[priors]", 1)[1]
+    elif population != "types":
+        raise ValueError(f"population must be 'types' or 'normal', got {population!r}")
+    return parse_design(text, source=f"<classification calibration scenario: {population}>")
 
 
 def replicate(design, rng, *, engine: str = "full", chains: int = 4, draws: int = 1000, tune: int | None = None):
@@ -150,9 +165,11 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--draws", type=int, default=1000)
     parser.add_argument("--tune", type=int, default=None)
     parser.add_argument("--seed", type=int, default=20261202)
+    parser.add_argument("--population", choices=("types", "normal"), default="types",
+                        help="types: four latent types (default); normal: normal heterogeneity, no types")
     parser.add_argument("--out", default=None, help="folder for replicates.csv, reliability.csv, report.html")
     args = parser.parse_args(argv)
-    design = scenario_design()
+    design = scenario_design(population=args.population)
     pooled, unpooled, rows = [], [], []
     for r, g in enumerate(spawn(args.seed, args.replicates)):
         cp, cu, sec = replicate(design, g, engine=args.engine, chains=args.chains, draws=args.draws, tune=args.tune)
@@ -169,7 +186,8 @@ def main(argv: list[str] | None = None) -> int:
     table = pd.DataFrame([_row(f"pooled ({args.engine} engine)", sp), _row("unpooled (conjugate, alone)", su)])
     pd.set_option("display.width", 160)
     print()
-    print(f"{args.replicates} replicates x {design.population.size} participants; {args.engine} engine, "
+    print(f"{args.replicates} replicates x {design.population.size} participants ({args.population} population); "
+          f"{args.engine} engine, "
           f"{args.chains} chains x {args.draws} draws")
     print(table.round(4).to_string(index=False))
     d = reps["brier_unpooled"] - reps["brier_pooled"]
