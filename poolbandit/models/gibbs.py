@@ -145,6 +145,35 @@ class GibbsState:
                           None if self.corr_chol is None else self.corr_chol.copy())
 
 
+@dataclass(frozen=True)
+class _Group:
+    """Coefficient blocks of one size ``k``: block numbers, their coefficients ``idx`` (B, k), flat ``P x P`` positions."""
+
+    k: int
+    members: list
+    idx: np.ndarray
+    flat: np.ndarray
+
+
+def _same_prefix(a: np.ndarray | None, b: np.ndarray | None) -> bool:
+    """``b`` begins with ``a`` (the same memory is trusted: model data are never modified in place)."""
+    if a is None or b is None:
+        return a is None and b is None
+    if len(b) < len(a):
+        return False
+    head = b[:len(a)]
+    if head.shape == a.shape and head.strides == a.strides and (
+            len(a) == 0 or head.__array_interface__["data"][0] == a.__array_interface__["data"][0]):
+        return True
+    return bool(np.array_equal(head, a))
+
+
+def _extends(old: ModelData, new: ModelData) -> bool:
+    """The rows of ``new`` begin with the rows of ``old`` (same outcomes, design rows, participants, weights)."""
+    return (_same_prefix(old.y, new.y) and _same_prefix(old.X, new.X) and _same_prefix(old.group, new.group)
+            and _same_prefix(old.obs_sd, new.obs_sd))
+
+
 class GibbsSampler:
     """Partially collapsed Gibbs sampler of the hierarchical model (see module docstring).
 
@@ -199,27 +228,40 @@ class GibbsSampler:
     def data(self) -> ModelData:
         return self._data
 
-    def _prepare(self, data: ModelData) -> None:
+    def _prepare(self, data: ModelData, old: ModelData | None = None) -> None:
+        """Sufficient statistics, coefficient blocks and their groups.
+
+        With ``old`` (gaussian outcome, ``data`` extends ``old`` row by row)
+        only the new rows are added to the statistics.
+        """
         n, P = data.X.shape
         N = data.n_participants
         X, y, g = data.X, data.y, data.group
         self._random = np.asarray(data.random, dtype=bool)
         self._Z = np.concatenate([np.ones((N, 1)), data.W], axis=1)  # (N, 1+Q)
-        # indicator matrix participant x observation: sums over each participant's rows
-        self._G = sp.csr_matrix((np.ones(n), (g, np.arange(n))), shape=(N, n))
-        outer = (X[:, :, None] * X[:, None, :]).reshape(n, P * P)
         if data.outcome == "gaussian":
-            w = np.ones(n) if data.obs_sd is None else 1.0 / np.asarray(data.obs_sd, dtype=float) ** 2
-            self._S = np.asarray(self._G @ (outer * w[:, None])).reshape(N, P, P)
-            self._s = np.asarray(self._G @ (X * (w * y)[:, None])).reshape(N, P)
-            self._yy = float(np.sum(w * y * y))
-            self._n_obs = n
-            self._outer = None
-            pattern = np.any(self._S != 0, axis=0) if N else np.zeros((P, P), bool)
+            n0 = 0 if old is None else len(old.y)
+            Xn, yn, gn = X[n0:], y[n0:], g[n0:]
+            w = np.ones(n - n0) if data.obs_sd is None else 1.0 / np.asarray(data.obs_sd[n0:], dtype=float) ** 2
+            G = sp.csr_matrix((np.ones(n - n0), (gn, np.arange(n - n0))), shape=(N, n - n0))
+            outer = (Xn[:, :, None] * Xn[:, None, :]).reshape(n - n0, P * P)
+            S = np.asarray(G @ (outer * w[:, None])).reshape(N, P, P)
+            s = np.asarray(G @ (Xn * (w * yn)[:, None])).reshape(N, P)
+            pattern = (outer != 0).any(axis=0).reshape(P, P) if n > n0 else np.zeros((P, P), bool)
+            yy = float(np.sum(w * yn * yn))
+            if old is not None:
+                N0 = old.n_participants
+                S[:N0] += self._S
+                s[:N0] += self._s
+                pattern |= self._pattern
+                yy += self._yy
+            self._S, self._s, self._yy, self._n_obs = S, s, yy, n
+            self._pattern = pattern.copy()
         else:
+            self._G = sp.csr_matrix((np.ones(n), (g, np.arange(n))), shape=(N, n))
             self._kappa = y - 0.5
             self._s = np.asarray(self._G @ (X * self._kappa[:, None])).reshape(N, P)
-            self._outer = outer
+            outer = (X[:, :, None] * X[:, None, :]).reshape(n, P * P)
             pattern = (outer != 0).any(axis=0).reshape(P, P) if n else np.zeros((P, P), bool)
         if self._full:
             r = np.flatnonzero(self._random)
@@ -228,28 +270,62 @@ class GibbsSampler:
         n_blocks, label = connected_components(sp.csr_matrix(pattern), directed=False)
         self._blocks = [np.flatnonzero(label == j) for j in range(n_blocks)]
         self._block_of = label
+        # blocks of equal size form a group, processed together: arrays (N, B, k, k)
+        sizes = sorted({len(b) for b in self._blocks})
+        self._groups = []
+        for k in sizes:
+            members = [j for j, b in enumerate(self._blocks) if len(b) == k]
+            idx = np.array([self._blocks[j] for j in members], dtype=np.int64).reshape(len(members), k)
+            flat = (idx[:, :, None] * P + idx[:, None, :]).reshape(-1)
+            self._groups.append(_Group(k, members, idx, flat))
+        self._where = {}  # block -> (group, position in group)
+        for gi, grp in enumerate(self._groups):
+            for bi, j in enumerate(grp.members):
+                self._where[j] = (gi, bi)
+        self._gs = [self._s[:, grp.idx] for grp in self._groups]
         if data.outcome == "gaussian":
-            self._S_blocks = [self._S[:, idx[:, None], idx[None, :]] for idx in self._blocks]
-        self._s_blocks = [self._s[:, idx] for idx in self._blocks]
+            self._gS = [self._S.reshape(N, P * P)[:, grp.flat].reshape(N, len(grp.members), grp.k, grp.k)
+                        for grp in self._groups]
+            # scalar blocks: the distinct values of X_i'X_i (counts for unit weights), for compressed sums
+            self._codes = []
+            for grp, S in zip(self._groups, self._gS):
+                if grp.k == 1 and N > 64:
+                    vals, code = np.unique(S[..., 0, 0].T, return_inverse=True)
+                    code = code.reshape(len(grp.members), N)
+                    if len(vals) * 4 <= N:
+                        self._codes.append((vals, code + (len(vals) * np.arange(len(grp.members)))[:, None]))
+                        continue
+                self._codes.append(None)
+        else:
+            self._gouter = [outer[:, grp.flat] for grp in self._groups]
+            self._A_bern = None
 
-    def _block_Ab(self, sigma: float | None = None) -> list[tuple[np.ndarray, np.ndarray]]:
-        """``(A_i, b_i)`` restricted to each coefficient block."""
+    def _group_Ab(self, sigma: float | None = None) -> list[tuple[np.ndarray, np.ndarray]]:
+        """``(A_i, b_i)`` of every group of blocks: (N, B, k, k) and (N, B, k)."""
         if self._data.outcome == "bernoulli":
-            A = self._A_bern
-            return [(A[:, idx[:, None], idx[None, :]], sb) for idx, sb in zip(self._blocks, self._s_blocks)]
+            return list(zip(self._gA, self._gs))
         if self._sigma_free:
             s2 = (self._sigma if sigma is None else sigma) ** 2
-            return [(S / s2, sb / s2) for S, sb in zip(self._S_blocks, self._s_blocks)]
-        return list(zip(self._S_blocks, self._s_blocks))
+            return [(S / s2, sb / s2) for S, sb in zip(self._gS, self._gs)]
+        return list(zip(self._gS, self._gs))
+
+    def _group_L(self, grp: "_Group") -> np.ndarray:
+        """The factor of ``Sigma`` restricted to each block of a group: (B, k, k)."""
+        if self._corr_chol is None:
+            return np.eye(grp.k) * self._tau[grp.idx][:, None, :]
+        return self._tau[grp.idx][:, :, None] * self._corr_chol[grp.idx[:, :, None], grp.idx[:, None, :]]
 
     def set_data(self, data: ModelData) -> None:
         """Replace the data by a larger study log of the same study (warm start).
 
         ``data.participants`` must begin with the current participants in the
         same order; new ids are appended. The sufficient statistics are
-        recomputed, the current state is kept, and new participants' ``theta``
+        updated, the current state is kept, and new participants' ``theta``
         are drawn from the current population distribution ``N(beta + Gamma
-        w_i, Sigma)``.
+        w_i, Sigma)``. For a gaussian outcome, when the rows of ``data`` begin
+        with the current rows (a study log that grew), only the new rows are
+        added to the statistics, so a step costs time in the new rows, not in
+        the whole log; otherwise everything is recomputed.
         """
         old = self._data
         N0 = old.n_participants
@@ -262,7 +338,7 @@ class GibbsSampler:
         if (data.obs_sd is None) != (old.obs_sd is None):
             raise ValueError("set_data: obs_sd must be given for both data sets or for neither")
         self._data = data
-        self._prepare(data)
+        self._prepare(data, old if data.outcome == "gaussian" and _extends(old, data) else None)
         N = data.n_participants
         if N > N0:
             m_new = self._beta + self._Z[N0:, 1:] @ self._gamma.T
@@ -270,6 +346,7 @@ class GibbsSampler:
             self._theta = np.concatenate([self._theta, m_new + z @ self._L().T], axis=0)
         if data.outcome == "bernoulli":
             self._draw_omega()
+
 
     # ------------------------------------------------------------------
     # State
@@ -329,11 +406,19 @@ class GibbsSampler:
         X, g = self._data.X, self._data.group
         psi = np.einsum("tp,tp->t", X, self._theta[g])
         self._omega = draw_pg(1.0, psi, self._rng)
-        N, P = self._theta.shape
-        self._A_bern = np.asarray(self._G @ (self._outer * self._omega[:, None])).reshape(N, P, P)
+        N = self._theta.shape[0]
+        self._gA = [np.asarray(self._G @ (o * self._omega[:, None])).reshape(N, len(grp.members), grp.k, grp.k)
+                    for grp, o in zip(self._groups, self._gouter)]
+        self._A_bern = None
 
     def _Ab(self, sigma: float | None = None) -> tuple[np.ndarray, np.ndarray]:
         if self._data.outcome == "bernoulli":
+            if self._A_bern is None:  # entries outside the blocks are zero
+                N, P = self._theta.shape
+                A = np.zeros((N, P * P))
+                for grp, Ag in zip(self._groups, self._gA):
+                    A[:, grp.flat] = Ag.reshape(N, -1)
+                self._A_bern = A.reshape(N, P, P)
             return self._A_bern, self._s
         if self._sigma_free:
             s2 = (self._sigma if sigma is None else sigma) ** 2
@@ -391,7 +476,7 @@ class GibbsSampler:
         Cinv_t = np.linalg.solve(np.swapaxes(C, 1, 2), np.broadcast_to(np.eye(P), C.shape))
         return m + z @ L.T, L @ Cinv_t
 
-    def _log_prior_tau(self, t: float) -> float:
+    def _log_prior_tau(self, t):
         s = self.priors.tau_scale
         if self.priors.tau_family == "half-normal":
             return -0.5 * (t / s) ** 2
@@ -411,59 +496,105 @@ class GibbsSampler:
         if self._data.outcome == "bernoulli":
             self._draw_omega()
         m = self._mean()
-        blocks = [(idx, Ab, bb, m[:, idx]) for idx, (Ab, bb) in zip(self._blocks, self._block_Ab())]
+        Abs = self._group_Ab()
+        mgs = [m[:, grp.idx] for grp in self._groups]
         # 2a. heterogeneity scales, theta integrated out
+        if self._full:
+            self._update_tau_full(Abs, mgs)
+        else:
+            self._update_tau_diagonal(Abs, mgs)
+        # 2b. correlations (full covariance), theta integrated out
+        if self._full and len(self._cpc):
+            self._update_corr(Abs, mgs)
+        # 2c. noise scale, theta integrated out
+        if self._sigma_free:
+            self._update_sigma(m, mgs)
+            Abs = self._group_Ab()
+        # 3. (beta, Gamma) jointly, theta integrated out
+        Ls = [self._group_L(grp) for grp in self._groups]
+        self._update_mean(Abs, Ls)
+        # 4. theta
+        m = self._mean()
+        theta = np.empty_like(m)
+        for grp, (A, b), L in zip(self._groups, Abs, Ls):
+            e = rng.standard_normal((m.shape[0], len(grp.members), grp.k))
+            theta[:, grp.idx] = gm.group_draw_theta(A, b, m[:, grp.idx], L, e)
+        self._theta = theta
+
+    def _update_tau_diagonal(self, Abs, mgs) -> None:
+        """Every ``log tau_p`` by slice sampling, blocks of a group in lockstep (they are independent given
+        ``beta, Gamma, sigma``; within a block the scales are updated one after another)."""
+        for gi, (grp, (A, b), mg) in enumerate(zip(self._groups, Abs, mgs)):
+            codes = self._codes[gi] if self._data.outcome == "gaussian" else None
+            for j in range(grp.k):
+                sel = self._random[grp.idx[:, j]]
+                if not sel.any():
+                    continue
+                coefs = grp.idx[sel, j]
+                if sel.all():
+                    As, bs, ms, L = A, b, mg, self._group_L(grp)
+                else:
+                    As, bs, ms, L = A[:, sel], b[:, sel], mg[:, sel], self._group_L(grp)[sel]
+                kk, g2 = gm.group_tau_terms(As, bs, ms, L, j)
+                wts = None
+                if codes is not None and sel.all():  # scalar blocks: sum over distinct X_i'X_i values
+                    vals, code = codes
+                    U = len(vals)
+                    wts = np.bincount(code.ravel(), minlength=U * len(coefs)).reshape(len(coefs), U).T
+                    g2 = np.bincount(code.ravel(), weights=g2.T.ravel(), minlength=U * len(coefs))
+                    g2 = g2.reshape(len(coefs), U).T
+                    kk = np.broadcast_to((vals / (self._sigma ** 2 if self._sigma_free else 1.0))[:, None],
+                                         g2.shape)
+                logf = self._tau_logf(kk, g2, wts)
+                x, k = gm.slice_step_vec(np.log(self._tau[coefs]), logf, self._rng)
+                self.n_evals += k
+                tau = self._tau.copy()
+                tau[coefs] = np.exp(x)
+                self._tau = tau
+
+    def _tau_logf(self, kk, g2, wts):
+        """Log density of ``x = log tau`` for each column of ``(kk, g2)`` (see :func:`_gibbs_math.group_tau_terms`)."""
+        prior = self._log_prior_tau
+
+        def logf(x):
+            t2 = np.exp(2.0 * x)  # (m, B)
+            v = 1.0 + t2[:, None, :] * kk  # (m, N, B)
+            logv = np.log(v)
+            if wts is not None:
+                logv = logv * wts
+            return 0.5 * t2 * np.sum(g2 / v, axis=1) - 0.5 * np.sum(logv, axis=1) + prior(np.exp(x)) + x
+
+        return logf
+
+    def _update_tau_full(self, Abs, mgs) -> None:
         for p in np.flatnonzero(self._random):
-            idx, Ab, bb, mb = blocks[self._block_of[p]]
-            if len(idx) == 1:  # scalar block: precompute what does not move with tau_p
-                a = Ab[:, 0, 0]
-                r2 = (bb[:, 0] - a * mb[:, 0]) ** 2
+            gi, bi = self._where[self._block_of[p]]
+            grp = self._groups[gi]
+            idx = grp.idx[bi]
+            Ab, bb, mb = Abs[gi][0][:, bi], Abs[gi][1][:, bi], mgs[gi][:, bi]
+            j = int(np.searchsorted(idx, p))
+            Cb = self._corr_chol[np.ix_(idx, idx)]
+            tau_b = self._tau[idx].copy()
 
-                def logf(x, a=a, r2=r2):
-                    l2 = math.exp(2.0 * x)
-                    Mi = 1.0 + l2 * a
-                    return (0.5 * l2 * float(np.sum(r2 / Mi)) - 0.5 * float(np.sum(np.log(Mi)))
-                            + self._log_prior_tau(math.exp(x)) + x)
-            else:
-                j = int(np.searchsorted(idx, p))
-                Cb = None if self._corr_chol is None else self._corr_chol[np.ix_(idx, idx)]
-                tau_b = self._tau[idx].copy()
+            def logf(x, j=j, tau_b=tau_b, Ab=Ab, bb=bb, mb=mb, Cb=Cb):
+                t = math.exp(x)
+                tau_b[j] = t
+                return gm.block_collapsed(Ab, bb, mb, tau_b[:, None] * Cb) + self._log_prior_tau(t) + x
 
-                def logf(x, j=j, tau_b=tau_b, Ab=Ab, bb=bb, mb=mb, Cb=Cb):
-                    t = math.exp(x)
-                    tau_b[j] = t
-                    Lb = np.diag(tau_b) if Cb is None else tau_b[:, None] * Cb
-                    return gm.block_collapsed(Ab, bb, mb, Lb) + self._log_prior_tau(t) + x
-
-            x, k = gm.slice_step(math.log(self._tau[p]), logf, rng)
+            x, k = gm.slice_step(math.log(self._tau[p]), logf, self._rng)
             self.n_evals += k
             tau = self._tau.copy()
             tau[p] = math.exp(x)
             self._tau = tau
-        # 2b. correlations (full covariance), theta integrated out
-        if self._full and len(self._cpc):
-            self._update_corr(blocks)
-        # 2c. noise scale, theta integrated out
-        if self._sigma_free:
-            self._update_sigma(m)
-        Abs = self._block_Ab()
-        # 3. (beta, Gamma) jointly, theta integrated out
-        self._update_mean(Abs)
-        # 4. theta
-        m = self._mean()
-        L = self._L()
-        theta = np.empty_like(m)
-        for idx, (Ab, bb) in zip(self._blocks, Abs):
-            theta[:, idx] = gm.block_draw_theta(Ab, bb, m[:, idx], L[np.ix_(idx, idx)], rng)
-        self._theta = theta
 
-    def _update_corr(self, blocks) -> None:
+    def _update_corr(self, Abs, mgs) -> None:
         r = np.flatnonzero(self._random)
         d = len(r)
-        idx, Ab, bb, mb = blocks[self._block_of[r[0]]]
+        gi, bi = self._where[self._block_of[r[0]]]
+        idx = self._groups[gi].idx[bi]
+        Ab, bb, mb = Abs[gi][0][:, bi], Abs[gi][1][:, bi], mgs[gi][:, bi]
         eta = self.priors.lkj_eta
         tau_b = self._tau[idx]
-        P = len(self._random)
         pos = np.searchsorted(idx, r)
         for c in range(len(self._cpc)):
             y = self._cpc.copy()
@@ -480,54 +611,147 @@ class GibbsSampler:
             y[c] = x
             self._cpc = y
         self._corr_chol = self._embed_corr(self._cpc)
-        del P
 
-    def _update_sigma(self, m: np.ndarray) -> None:
-        L = self._L()
-        n_obs, yy, scale = self._n_obs, self._yy, self.priors.sigma_scale
-        scalar, general = [], []
-        const = 0.0  # sum_i (s_i'm_i - m_i'S_i m_i / 2): multiplies 1 / sigma^2
-        for idx, S, sb in zip(self._blocks, self._S_blocks, self._s_blocks):
-            mb = m[:, idx]
-            Lb = L[np.ix_(idx, idx)]
-            const += float(np.sum(sb * mb) - 0.5 * np.einsum("ni,nij,nj->", mb, S, mb))
-            if len(idx) == 1:
-                if Lb[0, 0] > 0:
-                    u = sb[:, 0] - S[:, 0, 0] * mb[:, 0]
-                    scalar.append((S[:, 0, 0], u * u, Lb[0, 0] ** 2))
-            elif np.any(Lb):
-                general.append((S, sb, mb, Lb))
+    def _sigma_terms(self, m: np.ndarray, mgs):
+        """The collapsed log-likelihood as a function of the noise variance and a common scale of ``tau``.
+
+        Returns ``logf(x, c2)``: with ``s2 = exp(2 x)`` and every scale
+        multiplied by ``sqrt(c2)``, the log-likelihood (theta integrated out)
+        ``-n log sigma - (yy/2 - const) / s2 + sum -log(1 + c2 lam / s2) / 2 +
+        c2 w^2 / (2 s2 (s2 + c2 lam))``, where ``lam, w^2`` are the
+        eigen-terms of every block (:func:`_gibbs_math.group_sigma_terms`,
+        which scale with ``tau`` exactly this way).
+        """
+        n_obs, yy = self._n_obs, self._yy
+        S, s = self._S, self._s
+        # sum_i (s_i'm_i - m_i'S_i m_i / 2): multiplies 1 / sigma^2
+        const = float(np.sum(s * m) - 0.5 * np.einsum("ni,nij,nj->", m, S, m))
+        lams, w2s, cnts, cols = [], [], [], []
+        scalar = True  # every column belongs to one coefficient (scalar blocks)
+        for gi, (grp, S_g, s_g, mg) in enumerate(zip(self._groups, self._gS, self._gs, mgs)):
+            L = self._group_L(grp)
+            if not np.any(L):
+                continue
+            lam, w2 = gm.group_sigma_terms(S_g, s_g, mg, L)
+            codes = self._codes[gi]
+            if codes is not None:  # scalar blocks: sum over distinct X_i'X_i values
+                vals, code = codes
+                B, U = len(grp.members), len(vals)
+                lams.append(((self._tau[grp.idx[:, 0]] ** 2)[:, None] * vals[None, :]).ravel())
+                w2s.append(np.bincount(code.ravel(), weights=w2[..., 0].T.ravel(), minlength=U * B))
+                cnts.append(np.bincount(code.ravel(), minlength=U * B).astype(float))
+                cols.append(np.repeat(grp.idx[:, 0], U))
+            else:
+                lams.append(lam.reshape(-1))
+                w2s.append(w2.reshape(-1))
+                cnts.append(np.ones(lam.size))
+                scalar = scalar and grp.k == 1
+                cols.append(np.broadcast_to(grp.idx[:, 0], lam.shape[:2]).reshape(-1))
+        lam = np.concatenate(lams) if lams else np.zeros(0)
+        w2 = np.concatenate(w2s) if w2s else np.zeros(0)
+        cnt = np.concatenate(cnts) if cnts else np.zeros(0)
+        if np.all(cnt == 1.0):
+            cnt = None
+        base = const - 0.5 * yy
+        colmap = np.concatenate(cols) if (cols and scalar) else (np.zeros(0, np.int64) if scalar else None)
+
+        def logf(x, c2=1.0):
+            s2 = np.exp(2.0 * x)  # (m, 1)
+            cl = c2 * lam  # (m, M) or (M,)
+            v = s2 + cl
+            logv = np.log(v / s2)
+            if cnt is not None:
+                logv = logv * cnt
+            return (-n_obs * x + base / s2 + 0.5 * np.sum(c2 * w2 / v, axis=1, keepdims=True) / s2
+                    - 0.5 * np.sum(logv, axis=1, keepdims=True))
+
+        return logf, colmap
+
+    def _update_sigma(self, m: np.ndarray, mgs) -> None:
+        """``log sigma`` by slice sampling, then a joint move of ``log sigma`` and every ``log tau``.
+
+        The second update slices along the fixed direction ``(log tau, log
+        sigma) + t (-1, ..., -1, +1)`` of the same collapsed conditional: a
+        valid Gibbs update of the coordinate ``t`` (the shift has unit
+        Jacobian), which moves along the ridge ``tau^2 + sigma^2 = const``
+        where participants have one or two observations each.
+        """
+        scale = self.priors.sigma_scale
+        lik, colmap = self._sigma_terms(m, mgs)
 
         def logf(x):
-            s2 = math.exp(2.0 * x)
-            total = -n_obs * x + (const - 0.5 * yy) / s2
-            for Sd, u2, l2 in scalar:  # 1x1 blocks, see _gibbs_math.block_collapsed
-                v = s2 + l2 * Sd
-                total += 0.5 * l2 * float(np.sum(u2 / v)) / s2 - 0.5 * float(np.sum(np.log(v / s2)))
-            for S, sb, mb, Lb in general:
-                total += gm.block_collapsed(S / s2, sb / s2, mb, Lb)
-            return total - 0.5 * s2 / scale**2 + x
+            return lik(x) - 0.5 * np.exp(2.0 * x) / scale**2 + x
 
-        x, k = gm.slice_step(math.log(self._sigma), logf, self._rng)
+        x, k = gm.slice_step_vec(np.array([math.log(self._sigma)]), logf, self._rng)
         self.n_evals += k
-        self._sigma = float(math.exp(x))
+        sigma = float(math.exp(x[0]))
+        rnd = np.flatnonzero(self._random)
+        if not len(rnd):
+            self._sigma = sigma
+            return
+        prior = self._log_prior_tau
+        if colmap is not None:
+            # scalar blocks: shift the variances, tau_p^2 - t and sigma^2 + t (exactly along the ridge)
+            v0, s0 = self._tau[rnd] ** 2, sigma**2
+            where = np.full(len(self._random), -1)
+            where[rnd] = np.arange(len(rnd))
+            col = where[colmap]  # every column's coefficient among the random ones
+            keep = col >= 0
 
-    def _update_mean(self, Abs) -> None:
-        L = self._L()
+            def logf_ridge(t):  # t (m, 1)
+                v, s = v0 - t, s0 + t
+                ok = np.all(v > 0, axis=1, keepdims=True) & (s > 0)
+                v, s = np.where(ok, v, 1.0), np.where(ok, s, 1.0)
+                c2 = np.ones((t.shape[0], len(col)))
+                c2[:, keep] = (v / v0)[:, col[keep]]
+                out = (lik(0.5 * np.log(s), c2) - 0.5 * s / scale**2 - 0.5 * np.log(s)
+                       + np.sum(prior(np.sqrt(v)) - 0.5 * np.log(v), axis=1, keepdims=True))
+                return np.where(ok, out, -np.inf)
+
+            # the width is a function of the line's invariants tau_p^2 + sigma^2 only
+            t, k = gm.slice_step_vec(np.zeros(1), logf_ridge, self._rng, width=0.5 * float(np.mean(v0 + s0)))
+            t = float(t[0])
+            tau = self._tau.copy()
+            tau[rnd] = np.sqrt(v0 - t)
+            self._sigma = math.sqrt(s0 + t)
+        else:
+            # blocks of several coefficients: a common factor exp(-t) on every tau, exp(t) on sigma
+            lt = np.log(self._tau[rnd])
+            x0 = math.log(sigma)
+
+            def logf_ridge(t):  # t (m, 1)
+                x = x0 + t
+                ltau = lt - t  # (m, R)
+                return (lik(x, np.exp(-2.0 * t)) - 0.5 * np.exp(2.0 * x) / scale**2 + x
+                        + np.sum(prior(np.exp(ltau)) + ltau, axis=1, keepdims=True))
+
+            t, k = gm.slice_step_vec(np.zeros(1), logf_ridge, self._rng)
+            t = float(t[0])
+            tau = self._tau.copy()
+            tau[rnd] = np.exp(lt - t)
+            self._sigma = float(math.exp(x0 + t))
+        self.n_evals += k
+        self._tau = tau
+
+    def _update_mean(self, Abs, Ls) -> None:
         N, P = self._theta.shape
-        Pm = np.zeros((N, P, P))
+        Pm = np.zeros((N, P * P))
         cm = np.zeros((N, P))
-        for idx, (Ab, bb) in zip(self._blocks, Abs):
-            Pb, cb = gm.block_mean_precision(Ab, bb, L[np.ix_(idx, idx)])
-            Pm[:, idx[:, None], idx[None, :]] = Pb
-            cm[:, idx] = cb
+        for grp, (A, b), L in zip(self._groups, Abs, Ls):
+            Pb, cb = gm.group_mean_precision(A, b, L)
+            Pm[:, grp.flat] = Pb.reshape(N, -1)
+            cm[:, grp.idx.ravel()] = cb.reshape(N, -1)
         Z = self._Z
         a = Z.shape[1]
         D = a * P
-        # sum_i (z_i z_i') (x) P_i, ordered (covariate slot, coefficient)
-        zz = (Z[:, :, None] * Z[:, None, :]).reshape(N, a * a)
-        prec = (zz.T @ Pm.reshape(N, P * P)).reshape(a, a, P, P).transpose(0, 2, 1, 3).reshape(D, D)
-        lin = (Z.T @ cm).reshape(D)
+        if a == 1:
+            prec = Pm.sum(axis=0).reshape(P, P)
+            lin = cm.sum(axis=0)
+        else:
+            # sum_i (z_i z_i') (x) P_i, ordered (covariate slot, coefficient)
+            zz = (Z[:, :, None] * Z[:, None, :]).reshape(N, a * a)
+            prec = (zz.T @ Pm).reshape(a, a, P, P).transpose(0, 2, 1, 3).reshape(D, D)
+            lin = (Z.T @ cm).reshape(D)
         prior = np.concatenate([np.full(P, self.priors.beta_sd ** -2.0),
                                 np.full(D - P, self.priors.gamma_sd ** -2.0)])
         prec[np.diag_indices(D)] += prior
