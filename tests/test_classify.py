@@ -711,3 +711,13 @@ def test_posterior_kappa_draw_by_draw(hand_built):
         ref.append(sm_kappa(t, return_results=False))
     assert a.posterior_kappa["mean"] == pytest.approx(np.mean(ref), abs=1e-12)
     assert a.posterior_kappa["low"] <= a.posterior_kappa["mean"] <= a.posterior_kappa["high"]
+
+
+def test_agreement_with_undefined_kappa_is_nan_not_an_error(hand_built):
+    """Check that kappa is reported as undefined (NaN) when a single category appears on both sides,
+    where its formula divides by zero (Cohen 1960: 1 - p_e = 0)."""
+    c = classify(hand_built, RULES)  # only B is labelled, drill-leaning
+    a = agreement(c, pd.Series({"A": "drill-leaning", "B": "drill-leaning"}))
+    assert np.isnan(a.kappa.kappa) and a.kappa.n == 1 and a.n_undetermined == 1
+    with pytest.raises(ValueError, match="kappa is undefined"):
+        cohens_kappa([[3, 0], [0, 0]])

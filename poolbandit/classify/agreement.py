@@ -78,7 +78,8 @@ class Agreement:
         Counts: rows are posterior labels (every category, then
         ``"undetermined"``), columns intake categories.
     kappa : Kappa
-        Over participants with both a label other than ``"undetermined"`` and an intake answer.
+        Over participants with both a label other than ``"undetermined"`` and an intake answer
+        (NaN when undefined: no such participant, or one category on both sides).
     n_undetermined : int
         Participants with an intake answer but no posterior label.
     n_missing : int
@@ -181,7 +182,12 @@ def agreement(classification, intake: pd.Series | Mapping[str, str], *, level: f
     labels = classification.labels.set_index("participant")["label"]
     table = confusion_table(labels, intake, names)
     square = table.loc[names, names].to_numpy()
-    kappa = cohens_kappa(square, level=level)
+    try:
+        kappa = cohens_kappa(square, level=level)
+    except ValueError:  # no labelled participant with an answer, or a single category on both sides
+        nan = float("nan")
+        kappa = Kappa(nan, nan, nan, nan, float(np.trace(square) / square.sum()) if square.sum() else nan, nan,
+                      int(square.sum()), float(level))
     n_missing = int((~labels.index.isin(intake.index)).sum())
     return Agreement(table, kappa, int(table.loc[UNDETERMINED].sum()), n_missing,
                      _posterior_kappa(classification, intake, names))

@@ -160,9 +160,9 @@ def run(args: argparse.Namespace) -> int:
     if agree is not None:
         k = agree.kappa
         pk = agree.posterior_kappa
-        print(f"agreement with intake: kappa of labels {k.kappa:.3f} [{k.low:.3f}, {k.high:.3f}] over {k.n} "
-              f"labelled participants; draw by draw {pk['mean']:.3f} [{pk['low']:.3f}, {pk['high']:.3f}] over "
-              f"{pk['n']}")
+        labels_kappa = f"{k.kappa:.3f} [{k.low:.3f}, {k.high:.3f}]" if k.kappa == k.kappa else "undefined"
+        print(f"agreement with intake: kappa of labels {labels_kappa} over {k.n} labelled participants; "
+              f"draw by draw {pk['mean']:.3f} [{pk['low']:.3f}, {pk['high']:.3f}] over {pk['n']}")
     written = ["categories.csv", "effects.csv", "prevalence.csv"] + (["agreement.csv"] if agree else []) \
         + ["report.html"]
     print("wrote " + ", ".join(str(out / w) for w in written))

@@ -80,10 +80,14 @@ def classification_page(classification, *, title: str = "Participant categories"
     if agreement is not None:
         k = agreement.kappa
         page.heading("Agreement with the intake measure")
-        page.paragraph(
+        labels_text = (
             f"Cohen's kappa over the {k.n} participants with both a posterior label and an intake category: "
             f"{k.kappa:.3f} ({k.level:.0%} confidence interval {k.low:.3f} to {k.high:.3f}; observed agreement "
-            f"{k.observed:.3f}, chance agreement {k.expected:.3f}). {agreement.n_undetermined} participants with "
+            f"{k.observed:.3f}, chance agreement {k.expected:.3f})." if k.kappa == k.kappa else
+            f"Cohen's kappa of the labels is undefined over the {k.n} participants with both a posterior label "
+            "and an intake category (none, or a single category on both sides).")
+        page.paragraph(
+            f"{labels_text} {agreement.n_undetermined} participants with "
             f"an intake answer have no posterior label; {agreement.n_missing} have no intake answer. "
             f"Computed draw by draw over all {agreement.posterior_kappa['n']} participants with an answer, so that "
             f"the uncertainty of the categories counts, kappa is {agreement.posterior_kappa['mean']:.3f} "
