@@ -26,9 +26,11 @@ import dataclasses
 import math
 import multiprocessing
 import os
+import threading
 import zlib
 from collections.abc import Callable, Mapping, Sequence
-from concurrent.futures import ProcessPoolExecutor, as_completed
+from concurrent.futures import ProcessPoolExecutor
+from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import Any
 
@@ -266,12 +268,18 @@ class LocalExecutor(Executor):
     workers : int, optional
         Worker processes (default ``os.cpu_count()``). With one worker the
         units run in this process, with no pool at all.
-    batches_per_worker : int, default=4
+    batches_per_worker : int, default=8
         How many batches each worker gets (more batches: smoother progress
         and load balance; fewer: less messaging).
+
+    Notes
+    -----
+    With ``W > 1`` workers, ``W - 1`` child processes are started with the
+    ``spawn`` method and this process works through the same queue of
+    batches, so no core idles while the children import their libraries.
     """
 
-    def __init__(self, workers: int | None = None, *, batches_per_worker: int = 4):
+    def __init__(self, workers: int | None = None, *, batches_per_worker: int = 8):
         if workers is None:
             workers = os.cpu_count() or 1
         if isinstance(workers, bool) or not isinstance(workers, (int, np.integer)) or workers < 1:
@@ -291,16 +299,78 @@ class LocalExecutor(Executor):
                 if bar is not None:
                     bar.update(len(batch))
             return out
+        return _SharedQueue(fn, shared, batches, bar).run(self.workers)
+
+
+class _SharedQueue:
+    """Batches handed out one at a time to ``workers - 1`` child processes and to this process.
+
+    This process works through the queue too while the children start (a
+    spawned child needs a few seconds to import its libraries), and each
+    child gets its next batch as soon as it returns one, so the load stays
+    balanced to within one batch. Results are stored by batch index.
+    """
+
+    def __init__(self, fn, shared, batches, bar):
+        self.fn, self.shared, self.batches, self.bar = fn, shared, batches, bar
+        self.pending = list(range(len(batches)))
+        self.results: list[list[Any] | None] = [None] * len(batches)
+        self.remaining = len(batches)
+        self.lock = threading.Lock()
+        self.done = threading.Event()
+        self.error: BaseException | None = None
+        self.pool: ProcessPoolExecutor | None = None
+
+    def _take(self) -> int | None:
+        with self.lock:
+            if self.error is not None or not self.pending:
+                return None
+            return self.pending.pop(0)
+
+    def _finish(self, j: int, result: list[Any]) -> None:
+        self.results[j] = result
+        with self.lock:
+            self.remaining -= 1
+            if self.bar is not None:
+                self.bar.update(len(self.batches[j]))
+            if self.remaining == 0:
+                self.done.set()
+
+    def _submit_next(self) -> None:
+        j = self._take()
+        if j is None:
+            return
+        fut = self.pool.submit(_run_batch, self.fn, self.shared, self.batches[j])
+        fut.add_done_callback(lambda f, j=j: self._on_done(f, j))
+
+    def _on_done(self, fut, j: int) -> None:
+        try:
+            result = fut.result()
+        except BaseException as err:  # noqa: BLE001 - handed to the caller's thread
+            with self.lock:
+                self.error = self.error or err
+            self.done.set()
+            return
+        self._finish(j, result)
+        self._submit_next()
+
+    def run(self, workers: int) -> list[list[Any]]:
         ctx = multiprocessing.get_context("spawn")
-        results: list[list[Any] | None] = [None] * len(batches)
-        with ProcessPoolExecutor(max_workers=min(self.workers, len(batches)), mp_context=ctx) as pool:
-            futures = {pool.submit(_run_batch, fn, shared, batch): j for j, batch in enumerate(batches)}
-            for fut in as_completed(futures):
-                j = futures[fut]
-                results[j] = fut.result()
-                if bar is not None:
-                    bar.update(len(batches[j]))
-        return results
+        with _single_threaded_children(), ProcessPoolExecutor(max_workers=workers - 1, mp_context=ctx) as pool:
+            self.pool = pool
+            for _ in range(workers - 1):
+                self._submit_next()
+            while (j := self._take()) is not None:
+                try:
+                    self._finish(j, _run_batch(self.fn, self.shared, self.batches[j]))
+                except BaseException as err:
+                    with self.lock:
+                        self.error = self.error or err
+                    self.done.set()
+            self.done.wait()
+        if self.error is not None:
+            raise self.error
+        return self.results
 
 
 class DaskExecutor(Executor):
@@ -363,6 +433,30 @@ class DaskExecutor(Executor):
     def close(self) -> None:
         if self._own:
             self.client.close()
+
+
+@contextmanager
+def _single_threaded_children():
+    """While worker processes start, ask their numeric libraries for one thread each.
+
+    The workers already use every core between them; BLAS or OpenMP thread
+    pools inside each would only oversubscribe the machine. Variables the
+    user has set are left alone; the parent's environment is restored after.
+    """
+    saved = {k: os.environ.get(k) for k in _THREAD_VARS}
+    try:
+        for k in _THREAD_VARS:
+            os.environ.setdefault(k, "1")
+        yield
+    finally:
+        for k, v in saved.items():
+            if v is None:
+                os.environ.pop(k, None)
+            else:
+                os.environ[k] = v
+
+
+_THREAD_VARS = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
 
 
 def make_executor(*, workers: int | None = None, scheduler: Any = None) -> Executor:
