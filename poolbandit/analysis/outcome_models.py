@@ -150,10 +150,10 @@ def ridge_outcome_model(*, penalty: float = 4.0, sequential: bool = False) -> Ou
 def hierarchical_available() -> bool:
     """Whether the hierarchical model's fitting function is installed in this tree."""
     try:
-        from ..models import fit as _fit  # noqa: F401
+        from ..models.fit import fit as _fit  # noqa: F401
     except ImportError:
         return False
-    return hasattr(_fit, "fit")
+    return callable(_fit)
 
 
 def hierarchical_outcome_model(*, engine: str = "fast", chains: int = 2, draws: int = 200, tune: int = 200,

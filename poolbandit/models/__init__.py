@@ -1,13 +1,16 @@
 """The hierarchical model: data, coefficient layout, the two engines, fitting and arm effects.
 
-``fit`` (the one way to fit), ``sample_full`` (PyMC NUTS) and ``diagnostics_table``
-are imported lazily, so importing this package does not import PyMC.
+``sample_full`` (PyMC NUTS) and ``diagnostics_table`` are imported lazily, so importing
+this package does not import PyMC; ``fit`` (the one way to fit) imports PyMC only when the
+full engine runs. ``fit`` is bound eagerly: bound lazily, the submodule ``models.fit``
+would shadow the function once imported.
 """
 
 from importlib import import_module
 
 from .data import ModelData
 from .effects import arm_effects, context_vector
+from .fit import fit
 from .gibbs import GibbsSampler, GibbsState, sample_fast
 
 __all__ = [
@@ -15,7 +18,7 @@ __all__ = [
     "arm_effects", "context_vector",
 ]
 
-_LAZY = {"fit": ".fit", "sample_full": ".pymc_engine", "diagnostics_table": ".diagnostics"}
+_LAZY = {"sample_full": ".pymc_engine", "diagnostics_table": ".diagnostics"}
 
 
 def __getattr__(name: str):
