@@ -206,33 +206,46 @@ def _bwd(C: np.ndarray, v: np.ndarray) -> np.ndarray:
     return x
 
 
+def _mv(M: np.ndarray, v: np.ndarray) -> np.ndarray:
+    """``M v`` over broadcast leading axes: (..., k, k) x (..., k) -> (..., k)."""
+    return (M @ v[..., None])[..., 0]
+
+
+def _tmv(M: np.ndarray, v: np.ndarray) -> np.ndarray:
+    """``M' v`` over broadcast leading axes."""
+    return (np.swapaxes(M, -1, -2) @ v[..., None])[..., 0]
+
+
 def group_mean_precision(A: np.ndarray, b: np.ndarray, L: np.ndarray):
-    """:func:`block_mean_precision` for a group of blocks: ``(P, c)`` shaped like ``(A, b)``."""
+    """:func:`block_mean_precision` for groups of blocks: ``A`` (..., k, k), ``b`` (..., k), ``L``
+    broadcastable to ``A``; returns ``(P, c)`` with the broadcast shapes."""
     k = A.shape[-1]
     if k == 1:
-        l2 = L[:, 0, 0] ** 2
+        l2 = L[..., 0, 0] ** 2
         Mi = 1.0 + l2 * A[..., 0, 0]
         return A / Mi[..., None, None], b / Mi[..., None]
-    LtA = np.swapaxes(L, -1, -2) @ A  # (N, B, k, k)
+    LtA = np.swapaxes(L, -1, -2) @ A
     C = _chol(LtA @ L + np.eye(k))
     G = _fwd(C, LtA)  # C^{-1} L'A
-    g = _fwd(C, np.einsum("bji,nbj->nbi", L, b))  # C^{-1} L'b
-    return A - np.swapaxes(G, -1, -2) @ G, b - np.einsum("nbki,nbk->nbi", G, g)
+    g = _fwd(C, _tmv(L, b))  # C^{-1} L'b
+    return A - np.swapaxes(G, -1, -2) @ G, b - _tmv(G, g)
 
 
 def group_draw_theta(A: np.ndarray, b: np.ndarray, m: np.ndarray, L: np.ndarray, e: np.ndarray) -> np.ndarray:
-    """:func:`block_draw_theta` for a group of blocks with standard normal ``e`` shaped like ``m``."""
+    """:func:`block_draw_theta` for groups of blocks with standard normal ``e`` shaped like ``m``."""
     k = A.shape[-1]
-    r = b - np.einsum("nbij,nbj->nbi", A, m) if k > 1 else b - A[..., 0] * m
     if k == 1:
-        l = L[:, 0, 0]
-        Mi = 1.0 + l * l * A[..., 0, 0]
-        return m + (l * (l * r[..., 0] / Mi + e[..., 0] / np.sqrt(Mi)))[..., None]
+        l = L[..., 0, 0]
+        a = A[..., 0, 0]
+        Mi = 1.0 + l * l * a
+        r = b[..., 0] - a * m[..., 0]
+        return m + (l * (l * r / Mi + e[..., 0] / np.sqrt(Mi)))[..., None]
+    r = b - _mv(A, m)
     Lt = np.swapaxes(L, -1, -2)
     C = _chol(Lt @ A @ L + np.eye(k))
-    u = _fwd(C, np.einsum("bji,nbj->nbi", L, r))
+    u = _fwd(C, _tmv(L, r))
     z = _bwd(C, u + e)
-    return m + np.einsum("bij,nbj->nbi", L, z)
+    return m + _mv(L, z)
 
 
 def group_tau_terms(A: np.ndarray, b: np.ndarray, m: np.ndarray, L: np.ndarray, j: int):
@@ -245,36 +258,36 @@ def group_tau_terms(A: np.ndarray, b: np.ndarray, m: np.ndarray, L: np.ndarray, 
     where ``(P_i, c_i)`` is :func:`group_mean_precision` under ``Sigma_0``;
     then (up to a constant in ``t``) the collapsed log-likelihood is
     ``sum_i -log(1 + t^2 k_i) / 2 + t^2 g_i^2 / (2 (1 + t^2 k_i))``, exactly
-    the scalar-block form. Returns ``(k, g^2)`` shaped (N, B).
+    the scalar-block form. Returns ``(k, g^2)`` with the blocks' leading shape.
     """
     if A.shape[-1] == 1:
         a = A[..., 0, 0]
         return a, (b[..., 0] - a * m[..., 0]) ** 2
     L0 = L.copy()
-    L0[:, j, :] = 0.0
-    L0[:, :, j] = 0.0
+    L0[..., j, :] = 0.0
+    L0[..., :, j] = 0.0
     P, c = group_mean_precision(A, b, L0)
-    g = c[..., j] - np.einsum("nbi,nbi->nb", P[..., j, :], m)
+    g = c[..., j] - np.sum(P[..., j, :] * m, axis=-1)
     return P[..., j, j], g * g
 
 
 def group_sigma_terms(S: np.ndarray, s: np.ndarray, m: np.ndarray, L: np.ndarray):
-    """Eigen-terms of the collapsed likelihood of the noise variance for a group of blocks.
+    """Eigen-terms of the collapsed likelihood of the noise variance for groups of blocks.
 
     With ``A_i = S_i / s2`` and ``b_i = s_i / s2``, write ``L'S_iL = V
     diag(lam) V'`` and ``w = V'L'(s_i - S_i m_i)``; then the collapsed term of
     :func:`block_collapsed` is ``sum_k -log(1 + lam_k / s2) / 2 + w_k^2 / (2
     s2 (s2 + lam_k))`` for every ``s2``, so each slice evaluation of the noise
-    scale costs elementwise work only. Returns ``(lam, w^2)`` shaped (N, B, k).
+    scale costs elementwise work only. Returns ``(lam, w^2)`` shaped like ``m``.
     """
     k = S.shape[-1]
     if k == 1:
-        l2 = L[:, 0, 0] ** 2
+        l2 = L[..., 0, 0] ** 2
         u = s[..., 0] - S[..., 0, 0] * m[..., 0]
         return (l2 * S[..., 0, 0])[..., None], (l2 * u * u)[..., None]
-    u = s - np.einsum("nbij,nbj->nbi", S, m)
+    u = s - _mv(S, m)
     lam, V = np.linalg.eigh(np.swapaxes(L, -1, -2) @ S @ L)
-    w = np.einsum("nbki,nbk->nbi", V, np.einsum("bji,nbj->nbi", L, u))
+    w = _tmv(V, _tmv(L, u))
     return np.maximum(lam, 0.0), w * w
 
 
@@ -323,8 +336,8 @@ def slice_step(x0: float, logf: Callable[[float], float], rng: np.random.Generat
     return x0, n_eval  # pragma: no cover - shrinkage collapsed numerically
 
 
-def slice_step_vec(x0: np.ndarray, logf: Callable[[np.ndarray], np.ndarray], rng: np.random.Generator, *,
-                   width: float = 1.0, max_steps: int = 32, ahead: int = 1) -> tuple[np.ndarray, int]:
+def slice_step_vec(x0: np.ndarray, logf: Callable[[np.ndarray], np.ndarray], rng, *,
+                   width=1.0, max_steps: int = 32, ahead: int = 3, spec: int = 4) -> tuple[np.ndarray, np.ndarray]:
     """Independent slice-sampling updates of ``B`` scalars, run in lockstep.
 
     Each scalar ``x0[b]`` gets exactly the update of :func:`slice_step`
@@ -334,91 +347,91 @@ def slice_step_vec(x0: np.ndarray, logf: Callable[[np.ndarray], np.ndarray], rng
     ``(m, B)``: column ``b`` is evaluated under the density of scalar ``b``.
     Several points go into each call to cut call overhead: the start, both
     ends of the first interval and ``ahead`` further stepping-out positions on
-    each side are evaluated together, and shrinkage evaluates two candidates
-    per call (the second one assuming the first is rejected; its uniform is
-    drawn either way). Evaluating a point early never changes which point is
+    each side are evaluated together, and shrinkage evaluates ``spec``
+    candidates per call (each one assuming the ones before are rejected;
+    their uniforms are drawn either way). Evaluating a point early never changes which point is
     accepted, so the chain is the same as with one evaluation per call.
-    Returns the new values and the number of evaluations :func:`slice_step`
-    would have made (summed over scalars).
+
+    ``rng`` is a generator, or a list of generators (independent chains):
+    then the scalars are split into that many equal consecutive parts and
+    each part draws from its own generator. ``width`` is a number or one per
+    scalar. Returns the new values and, per scalar, the number of evaluations
+    :func:`slice_step` would have made.
     """
-    # the bookkeeping runs on Python floats (B is small); only logf touches arrays
-    xs = [float(v) for v in np.asarray(x0, dtype=float)]
-    B = len(xs)
-    e = rng.exponential(size=B).tolist()
-    u = rng.uniform(size=2 * B).tolist()
-    lo0 = [x - width * v for x, v in zip(xs, u[:B])]
-    hi0 = [v + width for v in lo0]
-    jl = [int(max_steps * v) for v in u[B:]]  # stepping-out budget, left (floor of a non-negative value)
-    jr = [max_steps - 1 - j for j in jl]  # and right
-    pts = [xs, lo0, hi0]
-    pts += [[v - s * width for v in lo0] for s in range(1, ahead + 1)]
-    pts += [[v + s * width for v in hi0] for s in range(1, ahead + 1)]
-    F = logf(np.array(pts)).tolist()
+    rngs = rng if isinstance(rng, (list, tuple)) else [rng]
+    x0 = np.asarray(x0, dtype=float)
+    B = x0.shape[0]
+    per = B // len(rngs)
+    w = np.broadcast_to(np.asarray(width, dtype=float), (B,))
+    rows = 3 + 3 * spec  # uniforms drawn at once: level, interval, budget, three rounds of shrinkage
+
+    def uniforms(k: int) -> np.ndarray:
+        if len(rngs) == 1:
+            return rngs[0].random((k, B))
+        return np.concatenate([r.random((k, per)) for r in rngs], axis=1)
+
+    U = uniforms(rows)
+    e = -np.log1p(-U[0])  # standard exponential (inverse cdf)
+    lo0 = x0 - w * U[1]
+    hi0 = lo0 + w
+    jl = np.floor(max_steps * U[2]).astype(np.int64)  # stepping-out budgets, left and right
+    jr = max_steps - 1 - jl
+    steps = np.arange(ahead + 1)[:, None] * w  # (ahead + 1, B)
+    F = logf(np.concatenate([x0[None], lo0 - steps, hi0 + steps]))
     f0 = F[0]
-    if not all(math.isfinite(v) for v in f0):
-        raise FloatingPointError(f"slice sampler started at a point of zero density (x={xs!r})")
-    level = [f - v for f, v in zip(f0, e)]
-    cache_l = [F[1]] + F[3:3 + ahead]  # f(lo0 - s w), s = 0..ahead
-    cache_r = [F[2]] + F[3 + ahead:]
-    n_eval = B
-    # stepping out, left and right in lockstep; sl, sr = steps taken so far
-    sl, sr = [0] * B, [0] * B
-    al = [j > 0 for j in jl]
-    ar = [j > 0 for j in jr]
-    while any(al) or any(ar):
-        if all(s <= ahead for s, a in zip(sl, al) if a) and all(s <= ahead for s, a in zip(sr, ar) if a):
-            fl = [cache_l[min(s, ahead)][b] for b, s in enumerate(sl)]
-            fr = [cache_r[min(s, ahead)][b] for b, s in enumerate(sr)]
-        else:
-            G = logf(np.array([[v - s * width for v, s in zip(lo0, sl)],
-                               [v + s * width for v, s in zip(hi0, sr)]])).tolist()
-            fl, fr = G
-        n_eval += sum(al) + sum(ar)
-        for b in range(B):
-            if al[b]:
-                if fl[b] > level[b]:
-                    sl[b] += 1
-                    al[b] = sl[b] < jl[b]
-                else:
-                    al[b] = False
-            if ar[b]:
-                if fr[b] > level[b]:
-                    sr[b] += 1
-                    ar[b] = sr[b] < jr[b]
-                else:
-                    ar[b] = False
-    lo = [v - s * width for v, s in zip(lo0, sl)]
-    hi = [v + s * width for v, s in zip(hi0, sr)]
-    # shrinkage, two candidates per call (the second assumes the first is rejected)
-    out = list(xs)
-    todo = [True] * B
-    for _ in range(100):
-        v = rng.uniform(size=2 * B).tolist()
-        c1 = [l + (h - l) * w for l, h, w in zip(lo, hi, v[:B])]
-        lo2 = [c if c < x else l for c, x, l in zip(c1, xs, lo)]
-        hi2 = [h if c < x else c for c, x, h in zip(c1, xs, hi)]
-        c2 = [l + (h - l) * w for l, h, w in zip(lo2, hi2, v[B:])]
-        G1, G2 = logf(np.array([c1, c2])).tolist()
-        for b in range(B):
-            if not todo[b]:
-                continue
-            n_eval += 1
-            if G1[b] > level[b]:
-                out[b] = c1[b]
-                todo[b] = False
-                continue
-            n_eval += 1
-            if G2[b] > level[b]:
-                out[b] = c2[b]
-                todo[b] = False
-                continue
-            if c2[b] < xs[b]:
-                lo[b], hi[b] = c2[b], hi2[b]
-            else:
-                lo[b], hi[b] = lo2[b], c2[b]
-        if not any(todo):
+    if not np.all(np.isfinite(f0)):
+        raise FloatingPointError(f"slice sampler started at a point of zero density (x={x0!r})")
+    level = f0 - e
+    n_eval = np.ones(B, np.int64)
+    # stepping out from the cached positions s = 0..ahead on each side
+    sides = []
+    for Fs, j in ((F[1:ahead + 2], jl), (F[ahead + 2:], jr)):
+        inside = Fs > level
+        first_out = np.where(inside.all(axis=0), ahead + 1, np.argmin(inside, axis=0))
+        s = np.minimum(j, first_out)  # steps taken
+        n_eval += np.minimum(j, first_out + 1)
+        sides.append(s)
+    sl, sr = sides
+    more_l = (sl == ahead + 1) & (jl > ahead + 1)  # still inside after the cache, budget left
+    more_r = (sr == ahead + 1) & (jr > ahead + 1)
+    while more_l.any() or more_r.any():  # rare: step out one position per call
+        G = logf(np.stack([lo0 - sl * w, hi0 + sr * w]))
+        n_eval += more_l
+        n_eval += more_r
+        more_l &= G[0] > level
+        more_r &= G[1] > level
+        sl = sl + more_l
+        sr = sr + more_r
+        more_l &= sl < jl
+        more_r &= sr < jr
+    lo = lo0 - sl * w
+    hi = hi0 + sr * w
+    # shrinkage, ``spec`` candidates per call (each assumes the ones before it are rejected)
+    out = x0.copy()
+    todo = np.ones(B, bool)
+    cols = np.arange(B)
+    U = U[3:]
+    for _ in range(200 // spec + 1):
+        if len(U) < spec:
+            U = uniforms(3 * spec)
+        cands = np.empty((spec, B))
+        for r in range(spec):
+            c = lo + (hi - lo) * U[r]
+            cands[r] = c
+            left = c < x0
+            lo = np.where(left, c, lo)
+            hi = np.where(left, hi, c)
+        U = U[spec:]
+        acc = logf(cands) > level
+        hit = acc.any(axis=0)
+        first = np.argmax(acc, axis=0)
+        n_eval += np.where(todo, np.where(hit, first + 1, spec), 0)
+        take = todo & hit
+        out = np.where(take, cands[first, cols], out)
+        todo &= ~hit
+        if not todo.any():
             break
-    return np.array(out), n_eval
+    return out, n_eval
 
 
 # --------------------------------------------------------------------------

@@ -97,6 +97,9 @@ FIXED_PRECISION = 1e12
 
 _INITS = ("prior", "dispersed")
 
+#: :func:`sample_fast` runs its chains in lockstep when ``chains * N * P^2`` is at most this.
+_LOCKSTEP_SIZE = 4_000_000
+
 
 @dataclass
 class GibbsState:
@@ -196,10 +199,24 @@ class GibbsSampler:
     The sampler never modifies the arrays of a state in place: every sweep
     builds new arrays, so a :class:`GibbsState` obtained from :attr:`state`
     stays valid (it is not copied).
+
+    Internally every array of the state has a leading chain axis:
+    :func:`sample_fast` runs its independent chains in lockstep (each with its
+    own random stream), which shares the cost of every array operation.
     """
 
     def __init__(self, data: ModelData, priors: PriorSpec, *, rng: RngLike = None,
                  init: Literal["prior", "dispersed"] = "prior"):
+        self._setup(data, priors, [as_generator(rng)], init)
+
+    @classmethod
+    def _chains(cls, data: ModelData, priors: PriorSpec, rngs: list, init: str) -> "GibbsSampler":
+        """Independent chains, one per generator in ``rngs``, updated in lockstep."""
+        self = cls.__new__(cls)
+        self._setup(data, priors, [as_generator(r) for r in rngs], init)
+        return self
+
+    def _setup(self, data: ModelData, priors: PriorSpec, rngs: list, init: str) -> None:
         if init not in _INITS:
             raise ValueError(f"init must be one of {list(_INITS)}; got {init!r}")
         if priors.covariance not in ("diagonal", "full"):
@@ -211,15 +228,30 @@ class GibbsSampler:
         if data.outcome == "bernoulli" and not np.all((data.y == 0) | (data.y == 1)):
             raise ValueError("a bernoulli outcome must be 0 or 1")
         self.priors = priors
-        self._rng = as_generator(rng)
+        self._rngs = rngs
+        self._C = len(rngs)
         self._full = priors.covariance == "full"
         self._sigma_free = data.outcome == "gaussian" and data.obs_sd is None
-        self.n_evals = 0  # log-density evaluations in the last sweep
+        self._n_evals = np.zeros(self._C, np.int64)  # log-density evaluations in the last sweep
         self._data = data
         self._prepare(data)
         self._init_state(init)
         if data.outcome == "bernoulli":
             self._draw_omega()
+
+    @property
+    def _rng(self) -> np.random.Generator:
+        return self._rngs[0]
+
+    @property
+    def n_evals(self):
+        """Log-density evaluations of the slice steps in the last sweep (per chain when there are several)."""
+        return int(self._n_evals[0]) if self._C == 1 else self._n_evals.copy()
+
+    @property
+    def _omega(self) -> np.ndarray:
+        """The current Polya-Gamma draws (n,) (chains, n) when there are several)."""
+        return self._omegas[0] if self._C == 1 else self._omegas
 
     # ------------------------------------------------------------------
     # Data and sufficient statistics
@@ -236,6 +268,7 @@ class GibbsSampler:
         """
         n, P = data.X.shape
         N = data.n_participants
+        C = self._C
         X, y, g = data.X, data.y, data.group
         self._random = np.asarray(data.random, dtype=bool)
         self._Z = np.concatenate([np.ones((N, 1)), data.W], axis=1)  # (N, 1+Q)
@@ -270,7 +303,7 @@ class GibbsSampler:
         n_blocks, label = connected_components(sp.csr_matrix(pattern), directed=False)
         self._blocks = [np.flatnonzero(label == j) for j in range(n_blocks)]
         self._block_of = label
-        # blocks of equal size form a group, processed together: arrays (N, B, k, k)
+        # blocks of equal size form a group, processed together: arrays (chain, N, B, k, k)
         sizes = sorted({len(b) for b in self._blocks})
         self._groups = []
         for k in sizes:
@@ -283,37 +316,51 @@ class GibbsSampler:
             for bi, j in enumerate(grp.members):
                 self._where[j] = (gi, bi)
         self._gs = [self._s[:, grp.idx] for grp in self._groups]
+        # slice widths of log tau_p from the data only: about 2.5 posterior sds when n_p participants
+        # have data on coefficient p (the sd of a log scale estimated from n_p groups is near 1 / sqrt(2 n_p))
+        if not n:
+            n_p = np.zeros(P)
+        elif data.outcome == "gaussian":  # positive weights: X_i'X_i has a positive diagonal entry
+            n_p = (np.diagonal(self._S, axis1=1, axis2=2) > 0).sum(axis=0)
+        else:
+            n_p = (self._G @ (X != 0).astype(float) > 0).sum(axis=0)
+        self._tau_width = np.clip(2.5 / np.sqrt(n_p + 1.0), 0.1, 1.0)
         if data.outcome == "gaussian":
             self._gS = [self._S.reshape(N, P * P)[:, grp.flat].reshape(N, len(grp.members), grp.k, grp.k)
                         for grp in self._groups]
             # scalar blocks: the distinct values of X_i'X_i (counts for unit weights), for compressed sums
             self._codes = []
             for grp, S in zip(self._groups, self._gS):
-                if grp.k == 1 and N > 64:
+                if grp.k == 1 and N:
                     vals, code = np.unique(S[..., 0, 0].T, return_inverse=True)
-                    code = code.reshape(len(grp.members), N)
-                    if len(vals) * 4 <= N:
-                        self._codes.append((vals, code + (len(vals) * np.arange(len(grp.members)))[:, None]))
+                    B, U = len(grp.members), len(vals)
+                    if U * 4 <= N:
+                        code = code.reshape(B, N) + (U * np.arange(B))[:, None]
+                        full = code[None] + (B * U * np.arange(C))[:, None, None]  # (chain, B, N)
+                        counts = np.bincount(code.ravel(), minlength=U * B).reshape(B, U)
+                        self._codes.append((vals, full.ravel(), counts))
                         continue
                 self._codes.append(None)
         else:
             self._gouter = [outer[:, grp.flat] for grp in self._groups]
             self._A_bern = None
 
-    def _group_Ab(self, sigma: float | None = None) -> list[tuple[np.ndarray, np.ndarray]]:
-        """``(A_i, b_i)`` of every group of blocks: (N, B, k, k) and (N, B, k)."""
+    def _group_Ab(self) -> list[tuple[np.ndarray, np.ndarray]]:
+        """``(A_i, b_i)`` of every group of blocks: (chain or 1, N, B, k, k) and (chain or 1, N, B, k)."""
         if self._data.outcome == "bernoulli":
-            return list(zip(self._gA, self._gs))
+            return [(A, sb[None]) for A, sb in zip(self._gA, self._gs)]
         if self._sigma_free:
-            s2 = (self._sigma if sigma is None else sigma) ** 2
-            return [(S / s2, sb / s2) for S, sb in zip(self._gS, self._gs)]
-        return list(zip(self._gS, self._gs))
+            s2 = self._sigma**2
+            return [(S[None] / s2[:, None, None, None, None], sb[None] / s2[:, None, None, None])
+                    for S, sb in zip(self._gS, self._gs)]
+        return [(S[None], sb[None]) for S, sb in zip(self._gS, self._gs)]
 
-    def _group_L(self, grp: "_Group") -> np.ndarray:
-        """The factor of ``Sigma`` restricted to each block of a group: (B, k, k)."""
+    def _group_L(self, grp: _Group) -> np.ndarray:
+        """The factor of ``Sigma`` restricted to each block of a group: (chain, 1, B, k, k)."""
+        t = self._tau[:, grp.idx]  # (chain, B, k)
         if self._corr_chol is None:
-            return np.eye(grp.k) * self._tau[grp.idx][:, None, :]
-        return self._tau[grp.idx][:, :, None] * self._corr_chol[grp.idx[:, :, None], grp.idx[:, None, :]]
+            return (np.eye(grp.k) * t[:, :, None, :])[:, None]
+        return (t[..., None] * self._corr_chol[:, grp.idx[:, :, None], grp.idx[:, None, :]])[:, None]
 
     def set_data(self, data: ModelData) -> None:
         """Replace the data by a larger study log of the same study (warm start).
@@ -341,53 +388,62 @@ class GibbsSampler:
         self._prepare(data, old if data.outcome == "gaussian" and _extends(old, data) else None)
         N = data.n_participants
         if N > N0:
-            m_new = self._beta + self._Z[N0:, 1:] @ self._gamma.T
-            z = self._rng.standard_normal((N - N0, len(self._beta)))
-            self._theta = np.concatenate([self._theta, m_new + z @ self._L().T], axis=0)
+            m_new = self._mean()[:, N0:]
+            L = self._L()
+            z = np.stack([r.standard_normal((N - N0, len(self._random))) for r in self._rngs])
+            self._theta = np.concatenate([self._theta, m_new + z @ np.swapaxes(L, 1, 2)], axis=1)
         if data.outcome == "bernoulli":
             self._draw_omega()
-
 
     # ------------------------------------------------------------------
     # State
     # ------------------------------------------------------------------
     def _L(self) -> np.ndarray:
+        """``L`` with ``Sigma = L L'`` per chain: (chain, P, P)."""
         if self._corr_chol is None:
-            return np.diag(self._tau)
-        return self._tau[:, None] * self._corr_chol
+            return self._tau[:, :, None] * np.eye(self._tau.shape[1])
+        return self._tau[:, :, None] * self._corr_chol
 
     @property
     def state(self) -> GibbsState:
         """The current draw (not a copy; arrays are replaced, never modified, by later sweeps)."""
-        return GibbsState(self._beta, self._gamma, self._tau, self._sigma, self._theta, self._corr_chol)
+        return GibbsState(self._beta[0], self._gamma[0], self._tau[0],
+                          None if self._sigma is None else float(self._sigma[0]), self._theta[0],
+                          None if self._corr_chol is None else self._corr_chol[0])
 
     def _init_state(self, init: str) -> None:
-        rng, pr, data = self._rng, self.priors, self._data
+        pr, data = self.priors, self._data
         P, Q, N = data.n_coef, len(data.covariates), data.n_participants
         spread = 2.0 if init == "dispersed" else 1.0
-        self._beta = spread * pr.beta_sd * rng.standard_normal(P)
-        self._gamma = spread * pr.gamma_sd * rng.standard_normal((P, Q))
-        if init == "prior":
-            if pr.tau_family == "half-normal":
-                tau = np.abs(pr.tau_scale * rng.standard_normal(P))
+        beta, gamma, taus, sigmas, cpcs, thetas = [], [], [], [], [], []
+        d = int(self._random.sum())
+        for rng in self._rngs:
+            beta.append(spread * pr.beta_sd * rng.standard_normal(P))
+            gamma.append(spread * pr.gamma_sd * rng.standard_normal((P, Q)))
+            if init == "prior":
+                if pr.tau_family == "half-normal":
+                    tau = np.abs(pr.tau_scale * rng.standard_normal(P))
+                else:
+                    tau = np.abs(pr.tau_scale * rng.standard_cauchy(P))
+                sigma = abs(pr.sigma_scale * rng.standard_normal())
             else:
-                tau = np.abs(pr.tau_scale * rng.standard_cauchy(P))
-            sigma = abs(pr.sigma_scale * rng.standard_normal())
-        else:
-            tau = pr.tau_scale * np.exp(rng.standard_normal(P))
-            sigma = pr.sigma_scale * float(np.exp(rng.standard_normal()))
-        self._tau = np.where(self._random, np.maximum(tau, 1e-8), 0.0)
-        self._sigma = max(sigma, 1e-8) if self._sigma_free else None
+                tau = pr.tau_scale * np.exp(rng.standard_normal(P))
+                sigma = pr.sigma_scale * float(np.exp(rng.standard_normal()))
+            taus.append(np.where(self._random, np.maximum(tau, 1e-8), 0.0))
+            sigmas.append(max(sigma, 1e-8))
+            cpc = np.zeros(d * (d - 1) // 2)
+            if self._full and init == "dispersed" and d > 1:
+                cpc = rng.uniform(-1.0, 1.0, d * (d - 1) // 2)
+            cpcs.append(cpc)
+            thetas.append(rng.standard_normal((N, P)))
+        self._beta, self._gamma, self._tau = np.array(beta), np.array(gamma).reshape(self._C, P, Q), np.array(taus)
+        self._sigma = np.array(sigmas) if self._sigma_free else None
         self._corr_chol = None
         self._cpc = None
         if self._full:
-            d = int(self._random.sum())
-            self._cpc = np.zeros(d * (d - 1) // 2)
-            if init == "dispersed" and d > 1:
-                self._cpc = rng.uniform(-1.0, 1.0, d * (d - 1) // 2)
-            self._corr_chol = self._embed_corr(self._cpc)
-        m = self._mean()
-        self._theta = m + rng.standard_normal((N, P)) @ self._L().T
+            self._cpc = np.array(cpcs)
+            self._corr_chol = np.array([self._embed_corr(c) for c in self._cpc])
+        self._theta = self._mean() + np.array(thetas) @ np.swapaxes(self._L(), 1, 2)
 
     def _embed_corr(self, y: np.ndarray) -> np.ndarray:
         P = len(self._random)
@@ -397,31 +453,41 @@ class GibbsSampler:
         return C
 
     def _mean(self) -> np.ndarray:
-        return self._beta + self._Z[:, 1:] @ self._gamma.T
+        """``m_i = beta + Gamma w_i`` per chain: (chain, N, P)."""
+        N = self._Z.shape[0]
+        if self._Z.shape[1] == 1:
+            return np.repeat(self._beta[:, None, :], N, axis=1)
+        return self._beta[:, None, :] + np.einsum("nq,cpq->cnp", self._Z[:, 1:], self._gamma)
 
     # ------------------------------------------------------------------
     # Likelihood pieces
     # ------------------------------------------------------------------
     def _draw_omega(self) -> None:
         X, g = self._data.X, self._data.group
-        psi = np.einsum("tp,tp->t", X, self._theta[g])
-        self._omega = draw_pg(1.0, psi, self._rng)
-        N = self._theta.shape[0]
-        self._gA = [np.asarray(self._G @ (o * self._omega[:, None])).reshape(N, len(grp.members), grp.k, grp.k)
-                    for grp, o in zip(self._groups, self._gouter)]
+        psi = np.einsum("tp,ctp->ct", X, self._theta[:, g])
+        self._omegas = np.stack([draw_pg(1.0, p, r) for p, r in zip(psi, self._rngs)])  # (chain, n)
+        N, C = self._theta.shape[1], self._C
+        gA = []
+        for grp, o in zip(self._groups, self._gouter):
+            F = o.shape[1]
+            prod = (o[:, :, None] * self._omegas.T[:, None, :]).reshape(len(o), F * C)
+            A = np.asarray(self._G @ prod).reshape(N, F, C)
+            gA.append(np.moveaxis(A, 2, 0).reshape(C, N, len(grp.members), grp.k, grp.k))
+        self._gA = gA
         self._A_bern = None
 
-    def _Ab(self, sigma: float | None = None) -> tuple[np.ndarray, np.ndarray]:
+    def _Ab(self) -> tuple[np.ndarray, np.ndarray]:
+        """Full ``(A_i, b_i)`` of the first chain: (N, P, P) and (N, P)."""
         if self._data.outcome == "bernoulli":
             if self._A_bern is None:  # entries outside the blocks are zero
-                N, P = self._theta.shape
+                N, P = self._theta.shape[1:]
                 A = np.zeros((N, P * P))
                 for grp, Ag in zip(self._groups, self._gA):
-                    A[:, grp.flat] = Ag.reshape(N, -1)
+                    A[:, grp.flat] = Ag[0].reshape(N, -1)
                 self._A_bern = A.reshape(N, P, P)
             return self._A_bern, self._s
         if self._sigma_free:
-            s2 = (self._sigma if sigma is None else sigma) ** 2
+            s2 = float(self._sigma[0]) ** 2
             return self._S / s2, self._s / s2
         return self._S, self._s
 
@@ -466,8 +532,8 @@ class GibbsSampler:
         A0, b0 = self._Ab()
         A = A0 if A is None else A
         b = b0 if b is None else b
-        m = self._mean()
-        L = self._L()
+        m = self._mean()[0]
+        L = self._L()[0]
         P = L.shape[0]
         C = np.linalg.cholesky(L.T @ A @ L + np.eye(P))
         r = b - np.einsum("nij,nj->ni", A, m)
@@ -491,20 +557,19 @@ class GibbsSampler:
             self._sweep()
 
     def _sweep(self) -> None:
-        self.n_evals = 0
-        rng = self._rng
+        self._n_evals = np.zeros(self._C, np.int64)
         if self._data.outcome == "bernoulli":
             self._draw_omega()
         m = self._mean()
         Abs = self._group_Ab()
-        mgs = [m[:, grp.idx] for grp in self._groups]
+        mgs = [m[:, :, grp.idx] for grp in self._groups]
         # 2a. heterogeneity scales, theta integrated out
         if self._full:
             self._update_tau_full(Abs, mgs)
         else:
             self._update_tau_diagonal(Abs, mgs)
         # 2b. correlations (full covariance), theta integrated out
-        if self._full and len(self._cpc):
+        if self._full and self._cpc.shape[1]:
             self._update_corr(Abs, mgs)
         # 2c. noise scale, theta integrated out
         if self._sigma_free:
@@ -516,14 +581,20 @@ class GibbsSampler:
         # 4. theta
         m = self._mean()
         theta = np.empty_like(m)
+        N = m.shape[1]
         for grp, (A, b), L in zip(self._groups, Abs, Ls):
-            e = rng.standard_normal((m.shape[0], len(grp.members), grp.k))
-            theta[:, grp.idx] = gm.group_draw_theta(A, b, m[:, grp.idx], L, e)
+            e = np.stack([r.standard_normal((N, len(grp.members), grp.k)) for r in self._rngs])
+            theta[:, :, grp.idx] = gm.group_draw_theta(A, b, m[:, :, grp.idx], L, e)
         self._theta = theta
 
+    def _count(self, k: np.ndarray) -> None:
+        """Add per-column evaluation counts of a lockstep slice step (columns chain-major)."""
+        self._n_evals += np.asarray(k).reshape(self._C, -1).sum(axis=1)
+
     def _update_tau_diagonal(self, Abs, mgs) -> None:
-        """Every ``log tau_p`` by slice sampling, blocks of a group in lockstep (they are independent given
-        ``beta, Gamma, sigma``; within a block the scales are updated one after another)."""
+        """Every ``log tau_p`` by slice sampling, blocks of a group and chains in lockstep (blocks are
+        independent given ``beta, Gamma, sigma``; within a block the scales are updated one after another)."""
+        C = self._C
         for gi, (grp, (A, b), mg) in enumerate(zip(self._groups, Abs, mgs)):
             codes = self._codes[gi] if self._data.outcome == "gaussian" else None
             for j in range(grp.k):
@@ -531,25 +602,33 @@ class GibbsSampler:
                 if not sel.any():
                     continue
                 coefs = grp.idx[sel, j]
+                R = len(coefs)
+                L = self._group_L(grp)
                 if sel.all():
-                    As, bs, ms, L = A, b, mg, self._group_L(grp)
+                    As, bs, ms = A, b, mg
                 else:
-                    As, bs, ms, L = A[:, sel], b[:, sel], mg[:, sel], self._group_L(grp)[sel]
-                kk, g2 = gm.group_tau_terms(As, bs, ms, L, j)
+                    As, bs, ms, L = A[:, :, sel], b[:, :, sel], mg[:, :, sel], L[:, :, sel]
+                kk, g2 = gm.group_tau_terms(As, bs, ms, L, j)  # (chain or 1, N, R)
+                kk = np.broadcast_to(kk, g2.shape)
                 wts = None
                 if codes is not None and sel.all():  # scalar blocks: sum over distinct X_i'X_i values
-                    vals, code = codes
+                    vals, code, counts = codes
                     U = len(vals)
-                    wts = np.bincount(code.ravel(), minlength=U * len(coefs)).reshape(len(coefs), U).T
-                    g2 = np.bincount(code.ravel(), weights=g2.T.ravel(), minlength=U * len(coefs))
-                    g2 = g2.reshape(len(coefs), U).T
-                    kk = np.broadcast_to((vals / (self._sigma ** 2 if self._sigma_free else 1.0))[:, None],
-                                         g2.shape)
+                    g2 = np.bincount(code, weights=np.swapaxes(g2, 1, 2).ravel(), minlength=C * R * U)
+                    g2 = g2.reshape(C * R, U).T
+                    wts = np.tile(counts.T, (1, C))
+                    s2 = self._sigma**2 if self._sigma_free else np.ones(C)
+                    kk = vals[:, None] / np.repeat(s2, R)[None, :]
+                else:
+                    N = g2.shape[1]
+                    g2 = np.moveaxis(g2, 0, 1).reshape(N, C * R)
+                    kk = np.moveaxis(kk, 0, 1).reshape(N, C * R)
                 logf = self._tau_logf(kk, g2, wts)
-                x, k = gm.slice_step_vec(np.log(self._tau[coefs]), logf, self._rng)
-                self.n_evals += k
+                x, k = gm.slice_step_vec(np.log(self._tau[:, coefs]).ravel(), logf, self._rngs,
+                                         width=np.tile(self._tau_width[coefs], C))
+                self._count(k)
                 tau = self._tau.copy()
-                tau[coefs] = np.exp(x)
+                tau[:, coefs] = np.exp(x).reshape(C, R)
                 self._tau = tau
 
     def _tau_logf(self, kk, g2, wts):
@@ -557,8 +636,8 @@ class GibbsSampler:
         prior = self._log_prior_tau
 
         def logf(x):
-            t2 = np.exp(2.0 * x)  # (m, B)
-            v = 1.0 + t2[:, None, :] * kk  # (m, N, B)
+            t2 = np.exp(2.0 * x)  # (m, columns)
+            v = 1.0 + t2[:, None, :] * kk  # (m, N or distinct values, columns)
             logv = np.log(v)
             if wts is not None:
                 logv = logv * wts
@@ -567,200 +646,228 @@ class GibbsSampler:
         return logf
 
     def _update_tau_full(self, Abs, mgs) -> None:
-        for p in np.flatnonzero(self._random):
-            gi, bi = self._where[self._block_of[p]]
-            grp = self._groups[gi]
-            idx = grp.idx[bi]
-            Ab, bb, mb = Abs[gi][0][:, bi], Abs[gi][1][:, bi], mgs[gi][:, bi]
-            j = int(np.searchsorted(idx, p))
-            Cb = self._corr_chol[np.ix_(idx, idx)]
-            tau_b = self._tau[idx].copy()
+        for c, rng in enumerate(self._rngs):
+            for p in np.flatnonzero(self._random):
+                gi, bi = self._where[self._block_of[p]]
+                grp = self._groups[gi]
+                idx = grp.idx[bi]
+                A, b = Abs[gi]
+                Ab, bb, mb = A[min(c, len(A) - 1), :, bi], b[min(c, len(b) - 1), :, bi], mgs[gi][c, :, bi]
+                j = int(np.searchsorted(idx, p))
+                Cb = self._corr_chol[c][np.ix_(idx, idx)]
+                tau_b = self._tau[c, idx].copy()
 
-            def logf(x, j=j, tau_b=tau_b, Ab=Ab, bb=bb, mb=mb, Cb=Cb):
-                t = math.exp(x)
-                tau_b[j] = t
-                return gm.block_collapsed(Ab, bb, mb, tau_b[:, None] * Cb) + self._log_prior_tau(t) + x
+                def logf(x, j=j, tau_b=tau_b, Ab=Ab, bb=bb, mb=mb, Cb=Cb):
+                    t = math.exp(x)
+                    tau_b[j] = t
+                    return gm.block_collapsed(Ab, bb, mb, tau_b[:, None] * Cb) + self._log_prior_tau(t) + x
 
-            x, k = gm.slice_step(math.log(self._tau[p]), logf, self._rng)
-            self.n_evals += k
-            tau = self._tau.copy()
-            tau[p] = math.exp(x)
-            self._tau = tau
+                x, k = gm.slice_step(math.log(self._tau[c, p]), logf, rng)
+                self._n_evals[c] += k
+                tau = self._tau.copy()
+                tau[c, p] = math.exp(x)
+                self._tau = tau
 
     def _update_corr(self, Abs, mgs) -> None:
         r = np.flatnonzero(self._random)
         d = len(r)
         gi, bi = self._where[self._block_of[r[0]]]
         idx = self._groups[gi].idx[bi]
-        Ab, bb, mb = Abs[gi][0][:, bi], Abs[gi][1][:, bi], mgs[gi][:, bi]
         eta = self.priors.lkj_eta
-        tau_b = self._tau[idx]
         pos = np.searchsorted(idx, r)
-        for c in range(len(self._cpc)):
-            y = self._cpc.copy()
+        A, b = Abs[gi]
+        cpcs = self._cpc.copy()
+        chols = self._corr_chol.copy()
+        for c, rng in enumerate(self._rngs):
+            Ab, bb, mb = A[min(c, len(A) - 1), :, bi], b[min(c, len(b) - 1), :, bi], mgs[gi][c, :, bi]
+            tau_b = self._tau[c, idx]
+            cpc = cpcs[c].copy()
+            for q in range(len(cpc)):
+                y = cpc.copy()
 
-            def logf(x, c=c, y=y):
-                y[c] = x
-                lp, Cr = gm.lkj_log_density_unconstrained(y, d, eta)
-                Cb = np.eye(len(idx))
-                Cb[np.ix_(pos, pos)] = Cr
-                return gm.block_collapsed(Ab, bb, mb, tau_b[:, None] * Cb) + lp
+                def logf(x, q=q, y=y):
+                    y[q] = x
+                    lp, Cr = gm.lkj_log_density_unconstrained(y, d, eta)
+                    Cb = np.eye(len(idx))
+                    Cb[np.ix_(pos, pos)] = Cr
+                    return gm.block_collapsed(Ab, bb, mb, tau_b[:, None] * Cb) + lp
 
-            x, k = gm.slice_step(self._cpc[c], logf, self._rng)
-            self.n_evals += k
-            y[c] = x
-            self._cpc = y
-        self._corr_chol = self._embed_corr(self._cpc)
+                x, k = gm.slice_step(cpc[q], logf, rng)
+                self._n_evals[c] += k
+                cpc[q] = x
+            cpcs[c] = cpc
+            chols[c] = self._embed_corr(cpc)
+        self._cpc = cpcs
+        self._corr_chol = chols
 
     def _sigma_terms(self, m: np.ndarray, mgs):
         """The collapsed log-likelihood as a function of the noise variance and a common scale of ``tau``.
 
-        Returns ``logf(x, c2)``: with ``s2 = exp(2 x)`` and every scale
-        multiplied by ``sqrt(c2)``, the log-likelihood (theta integrated out)
-        ``-n log sigma - (yy/2 - const) / s2 + sum -log(1 + c2 lam / s2) / 2 +
-        c2 w^2 / (2 s2 (s2 + c2 lam))``, where ``lam, w^2`` are the
-        eigen-terms of every block (:func:`_gibbs_math.group_sigma_terms`,
-        which scale with ``tau`` exactly this way).
+        Returns ``(logf, colmap)``. ``logf(x, c2)``: with ``s2 = exp(2 x)``
+        (x shaped (points, chain)) and every scale multiplied by ``sqrt(c2)``,
+        the log-likelihood (theta integrated out) ``-n log sigma - (yy/2 -
+        const) / s2 + sum -log(1 + c2 lam / s2) / 2 + c2 w^2 / (2 s2 (s2 + c2
+        lam))``, where ``lam, w^2`` are the eigen-terms of every block
+        (:func:`_gibbs_math.group_sigma_terms`, which scale with ``tau``
+        exactly this way); ``c2`` may also be given per term (points, chain,
+        terms). ``colmap``: the coefficient of every term when all blocks with
+        random coefficients are scalar, else None.
         """
-        n_obs, yy = self._n_obs, self._yy
-        S, s = self._S, self._s
-        # sum_i (s_i'm_i - m_i'S_i m_i / 2): multiplies 1 / sigma^2
-        const = float(np.sum(s * m) - 0.5 * np.einsum("ni,nij,nj->", m, S, m))
+        n_obs, yy, C = self._n_obs, self._yy, self._C
+        # sum_i (s_i'm_i - m_i'S_i m_i / 2): multiplies 1 / sigma^2, per chain
+        const = np.zeros(C)
         lams, w2s, cnts, cols = [], [], [], []
-        scalar = True  # every column belongs to one coefficient (scalar blocks)
+        scalar = True  # every term belongs to one coefficient (scalar blocks)
         for gi, (grp, S_g, s_g, mg) in enumerate(zip(self._groups, self._gS, self._gs, mgs)):
+            if grp.k == 1:
+                const += np.sum(mg[..., 0] * (s_g[..., 0] - 0.5 * S_g[..., 0, 0] * mg[..., 0]), axis=(1, 2))
+            else:
+                Sm = (S_g @ mg[..., None])[..., 0]
+                const += np.sum(mg * (s_g - 0.5 * Sm), axis=(1, 2, 3))
             L = self._group_L(grp)
             if not np.any(L):
                 continue
-            lam, w2 = gm.group_sigma_terms(S_g, s_g, mg, L)
+            lam, w2 = gm.group_sigma_terms(S_g, s_g, mg, L)  # (chain, N, B, k)
             codes = self._codes[gi]
             if codes is not None:  # scalar blocks: sum over distinct X_i'X_i values
-                vals, code = codes
+                vals, code, counts = codes
                 B, U = len(grp.members), len(vals)
-                lams.append(((self._tau[grp.idx[:, 0]] ** 2)[:, None] * vals[None, :]).ravel())
-                w2s.append(np.bincount(code.ravel(), weights=w2[..., 0].T.ravel(), minlength=U * B))
-                cnts.append(np.bincount(code.ravel(), minlength=U * B).astype(float))
+                lams.append(((self._tau[:, grp.idx[:, 0]] ** 2)[:, :, None] * vals).reshape(C, B * U))
+                w2s.append(np.bincount(code, weights=np.swapaxes(w2[..., 0], 1, 2).ravel(),
+                                       minlength=C * B * U).reshape(C, B * U))
+                cnts.append(counts.ravel().astype(float))
                 cols.append(np.repeat(grp.idx[:, 0], U))
             else:
-                lams.append(lam.reshape(-1))
-                w2s.append(w2.reshape(-1))
-                cnts.append(np.ones(lam.size))
+                lams.append(lam.reshape(C, -1))
+                w2s.append(w2.reshape(C, -1))
+                cnts.append(np.ones(lam[0].size))
                 scalar = scalar and grp.k == 1
-                cols.append(np.broadcast_to(grp.idx[:, 0], lam.shape[:2]).reshape(-1))
-        lam = np.concatenate(lams) if lams else np.zeros(0)
-        w2 = np.concatenate(w2s) if w2s else np.zeros(0)
+                cols.append(np.broadcast_to(grp.idx[:, 0], lam.shape[1:3]).reshape(-1))
+        lam = np.concatenate(lams, axis=1) if lams else np.zeros((C, 0))
+        w2 = np.concatenate(w2s, axis=1) if w2s else np.zeros((C, 0))
         cnt = np.concatenate(cnts) if cnts else np.zeros(0)
         if np.all(cnt == 1.0):
             cnt = None
         base = const - 0.5 * yy
         colmap = np.concatenate(cols) if (cols and scalar) else (np.zeros(0, np.int64) if scalar else None)
 
-        def logf(x, c2=1.0):
-            s2 = np.exp(2.0 * x)  # (m, 1)
-            cl = c2 * lam  # (m, M) or (M,)
-            v = s2 + cl
-            logv = np.log(v / s2)
+        n_terms = float(cnt.sum()) if cnt is not None else float(lam.shape[1])
+
+        def logf(x, c2=None):
+            s2 = np.exp(2.0 * x)  # (m, chain)
+            if c2 is None:
+                v = s2[..., None] + lam
+                q = w2 / v
+            else:  # c2 (m, chain, 1) or (m, chain, terms)
+                v = s2[..., None] + c2 * lam
+                q = c2 * w2 / v
+            logv = np.log(v)
             if cnt is not None:
-                logv = logv * cnt
-            return (-n_obs * x + base / s2 + 0.5 * np.sum(c2 * w2 / v, axis=1, keepdims=True) / s2
-                    - 0.5 * np.sum(logv, axis=1, keepdims=True))
+                logv = logv @ cnt
+            else:
+                logv = np.sum(logv, axis=-1)
+            # sum log(v / s2) = sum log v - n_terms * 2x
+            return (-n_obs * x + base / s2 + 0.5 * np.sum(q, axis=-1) / s2 - 0.5 * logv + n_terms * x)
 
         return logf, colmap
 
     def _update_sigma(self, m: np.ndarray, mgs) -> None:
-        """``log sigma`` by slice sampling, then a joint move of ``log sigma`` and every ``log tau``.
+        """``log sigma`` by slice sampling, then a joint move of ``sigma`` and every ``tau`` along their ridge.
 
-        The second update slices along the fixed direction ``(log tau, log
-        sigma) + t (-1, ..., -1, +1)`` of the same collapsed conditional: a
-        valid Gibbs update of the coordinate ``t`` (the shift has unit
-        Jacobian), which moves along the ridge ``tau^2 + sigma^2 = const``
-        where participants have one or two observations each.
+        The second update slices along a fixed line through the current
+        ``(tau, sigma)`` of the same collapsed conditional (a valid Gibbs
+        update of the coordinate along the line). When every random
+        coefficient is its own block the line is ``tau_p^2 - t, sigma^2 + t``
+        in the variances, exactly along the ridge ``tau_p^2 + sigma^2 =
+        const`` that the data identify when participants have one or two
+        observations each (its stepping-out width depends only on those
+        invariants of the line); otherwise it is ``log tau_p - t, log sigma +
+        t``. Both shifts have a unit Jacobian in their coordinates.
         """
         scale = self.priors.sigma_scale
+        C, n_obs = self._C, self._n_obs
         lik, colmap = self._sigma_terms(m, mgs)
 
         def logf(x):
             return lik(x) - 0.5 * np.exp(2.0 * x) / scale**2 + x
 
-        x, k = gm.slice_step_vec(np.array([math.log(self._sigma)]), logf, self._rng)
-        self.n_evals += k
-        sigma = float(math.exp(x[0]))
+        # the width depends on the data only: log sigma is known to about 1 / sqrt(2 n)
+        x, k = gm.slice_step_vec(np.log(self._sigma), logf, self._rngs, width=min(1.0, 3.0 / math.sqrt(n_obs + 1)))
+        self._count(k)
+        sigma = np.exp(x)
         rnd = np.flatnonzero(self._random)
         if not len(rnd):
             self._sigma = sigma
             return
         prior = self._log_prior_tau
         if colmap is not None:
-            # scalar blocks: shift the variances, tau_p^2 - t and sigma^2 + t (exactly along the ridge)
-            v0, s0 = self._tau[rnd] ** 2, sigma**2
+            v0, s0 = self._tau[:, rnd] ** 2, sigma**2  # (chain, R), (chain,)
             where = np.full(len(self._random), -1)
             where[rnd] = np.arange(len(rnd))
-            col = where[colmap]  # every column's coefficient among the random ones
-            keep = col >= 0
+            col = where[colmap]  # every term's coefficient among the random ones
+            take = np.where(col >= 0, col, len(rnd))  # the last slot: factor 1 for fixed coefficients
 
-            def logf_ridge(t):  # t (m, 1)
-                v, s = v0 - t, s0 + t
-                ok = np.all(v > 0, axis=1, keepdims=True) & (s > 0)
-                v, s = np.where(ok, v, 1.0), np.where(ok, s, 1.0)
-                c2 = np.ones((t.shape[0], len(col)))
-                c2[:, keep] = (v / v0)[:, col[keep]]
-                out = (lik(0.5 * np.log(s), c2) - 0.5 * s / scale**2 - 0.5 * np.log(s)
-                       + np.sum(prior(np.sqrt(v)) - 0.5 * np.log(v), axis=1, keepdims=True))
+            def logf_ridge(t):  # t (m, chain)
+                v, s = v0 - t[..., None], s0 + t
+                ok = np.all(v > 0, axis=-1) & (s > 0)
+                v, s = np.where(ok[..., None], v, 1.0), np.where(ok, s, 1.0)
+                ratio = np.concatenate([v / v0, np.ones(t.shape + (1,))], axis=-1)
+                out = (lik(0.5 * np.log(s), ratio[..., take]) - 0.5 * s / scale**2 - 0.5 * np.log(s)
+                       + np.sum(prior(np.sqrt(v)) - 0.5 * np.log(v), axis=-1))
                 return np.where(ok, out, -np.inf)
 
-            # the width is a function of the line's invariants tau_p^2 + sigma^2 only
-            t, k = gm.slice_step_vec(np.zeros(1), logf_ridge, self._rng, width=0.5 * float(np.mean(v0 + s0)))
-            t = float(t[0])
+            # the width is a function of the data and of the line's invariants tau_p^2 + sigma^2 only
+            width = 0.5 * np.mean(v0 + s0[:, None], axis=1) * min(1.0, 3.0 / math.sqrt(n_obs + 1))
+            t, k = gm.slice_step_vec(np.zeros(C), logf_ridge, self._rngs, width=width)
             tau = self._tau.copy()
-            tau[rnd] = np.sqrt(v0 - t)
-            self._sigma = math.sqrt(s0 + t)
+            tau[:, rnd] = np.sqrt(v0 - t[:, None])
+            self._sigma = np.sqrt(s0 + t)
         else:
-            # blocks of several coefficients: a common factor exp(-t) on every tau, exp(t) on sigma
-            lt = np.log(self._tau[rnd])
-            x0 = math.log(sigma)
+            lt = np.log(self._tau[:, rnd])
+            x0 = np.log(sigma)
 
-            def logf_ridge(t):  # t (m, 1)
+            def logf_ridge(t):  # t (m, chain)
                 x = x0 + t
-                ltau = lt - t  # (m, R)
-                return (lik(x, np.exp(-2.0 * t)) - 0.5 * np.exp(2.0 * x) / scale**2 + x
-                        + np.sum(prior(np.exp(ltau)) + ltau, axis=1, keepdims=True))
+                ltau = lt - t[..., None]  # (m, chain, R)
+                return (lik(x, np.exp(-2.0 * t)[..., None]) - 0.5 * np.exp(2.0 * x) / scale**2 + x
+                        + np.sum(prior(np.exp(ltau)) + ltau, axis=-1))
 
-            t, k = gm.slice_step_vec(np.zeros(1), logf_ridge, self._rng)
-            t = float(t[0])
+            t, k = gm.slice_step_vec(np.zeros(C), logf_ridge, self._rngs)
             tau = self._tau.copy()
-            tau[rnd] = np.exp(lt - t)
-            self._sigma = float(math.exp(x0 + t))
-        self.n_evals += k
+            tau[:, rnd] = np.exp(lt - t[:, None])
+            self._sigma = np.exp(x0 + t)
+        self._count(k)
         self._tau = tau
 
     def _update_mean(self, Abs, Ls) -> None:
-        N, P = self._theta.shape
-        Pm = np.zeros((N, P * P))
-        cm = np.zeros((N, P))
+        C, N, P = self._theta.shape
+        Pm = np.zeros((C, N, P * P))
+        cm = np.zeros((C, N, P))
         for grp, (A, b), L in zip(self._groups, Abs, Ls):
             Pb, cb = gm.group_mean_precision(A, b, L)
-            Pm[:, grp.flat] = Pb.reshape(N, -1)
-            cm[:, grp.idx.ravel()] = cb.reshape(N, -1)
+            Pm[:, :, grp.flat] = Pb.reshape(C, N, -1)
+            cm[:, :, grp.idx.ravel()] = cb.reshape(C, N, -1)
         Z = self._Z
         a = Z.shape[1]
         D = a * P
         if a == 1:
-            prec = Pm.sum(axis=0).reshape(P, P)
-            lin = cm.sum(axis=0)
+            prec = Pm.sum(axis=1).reshape(C, P, P)
+            lin = cm.sum(axis=1)
         else:
             # sum_i (z_i z_i') (x) P_i, ordered (covariate slot, coefficient)
             zz = (Z[:, :, None] * Z[:, None, :]).reshape(N, a * a)
-            prec = (zz.T @ Pm).reshape(a, a, P, P).transpose(0, 2, 1, 3).reshape(D, D)
-            lin = (Z.T @ cm).reshape(D)
+            prec = np.einsum("nz,cnf->czf", zz, Pm).reshape(C, a, a, P, P).transpose(0, 1, 3, 2, 4).reshape(C, D, D)
+            lin = np.einsum("na,cnp->cap", Z, cm).reshape(C, D)
         prior = np.concatenate([np.full(P, self.priors.beta_sd ** -2.0),
                                 np.full(D - P, self.priors.gamma_sd ** -2.0)])
-        prec[np.diag_indices(D)] += prior
+        prec[:, np.arange(D), np.arange(D)] += prior
         Lp = np.linalg.cholesky(prec)  # prec = Lp Lp'
-        mean = np.linalg.solve(Lp.T, np.linalg.solve(Lp, lin))
-        eta = mean + np.linalg.solve(Lp.T, self._rng.standard_normal(D))
-        eta = eta.reshape(Z.shape[1], P)
-        self._beta = eta[0].copy()
-        self._gamma = eta[1:].T.copy()
+        z = np.stack([r.standard_normal(D) for r in self._rngs])
+        # mean + Lp^{-T} z = Lp^{-T} (Lp^{-1} lin + z)
+        u = np.linalg.solve(Lp, lin[..., None])[..., 0] + z
+        eta = np.linalg.solve(np.swapaxes(Lp, 1, 2), u[..., None])[..., 0].reshape(C, a, P)
+        self._beta = eta[:, 0].copy()
+        self._gamma = np.swapaxes(eta[:, 1:], 1, 2).copy()
 
 
 # ----------------------------------------------------------------------
@@ -815,27 +922,29 @@ def sample_fast(data: ModelData, priors: PriorSpec, *, chains: int = 4, draws: i
         out["corr"] = np.empty((chains, draws, P, P))
     n_evals = np.empty((chains, draws), dtype=np.int64)
     streams = spawn(rng, chains)
-    iterator = range(chains)
+    # chains run in lockstep (one sampler with a chain axis) unless their arrays would be large
+    lockstep = chains * N * P * P <= _LOCKSTEP_SIZE
+    runs = [list(range(chains))] if lockstep else [[c] for c in range(chains)]
+    iterator = runs
     if progress:
         from tqdm.auto import tqdm
 
-        iterator = tqdm(iterator, desc="fast engine", unit="chain")
-    for c in iterator:
-        s = GibbsSampler(data, priors, rng=streams[c], init=init)
+        iterator = tqdm(runs, desc="fast engine", unit="chain" if not lockstep else "run")
+    for cs in iterator:
+        s = GibbsSampler._chains(data, priors, [streams[c] for c in cs], init)
         s.sweep(tune)
         for d in range(draws):
             s.sweep(thin)
-            st = s.state
-            out["beta"][c, d] = st.beta
-            out["tau"][c, d] = st.tau
-            out["theta"][c, d] = st.theta
+            out["beta"][cs, d] = s._beta
+            out["tau"][cs, d] = s._tau
+            out["theta"][cs, d] = s._theta
             if Q:
-                out["gamma"][c, d] = st.gamma
+                out["gamma"][cs, d] = s._gamma
             if sigma_free:
-                out["sigma"][c, d] = st.sigma
+                out["sigma"][cs, d] = s._sigma
             if priors.covariance == "full":
-                out["corr"][c, d] = st.corr
-            n_evals[c, d] = s.n_evals
+                out["corr"][cs, d] = s._corr_chol @ np.swapaxes(s._corr_chol, 1, 2)
+            n_evals[cs, d] = s._n_evals
     coef = list(data.coef)
     coords = {"coef": coef, "participant": list(data.participants)}
     dims = {"beta": ["coef"], "tau": ["coef"], "theta": ["participant", "coef"]}
