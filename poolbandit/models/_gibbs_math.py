@@ -359,79 +359,108 @@ def slice_step_vec(x0: np.ndarray, logf: Callable[[np.ndarray], np.ndarray], rng
     :func:`slice_step` would have made.
     """
     rngs = rng if isinstance(rng, (list, tuple)) else [rng]
-    x0 = np.asarray(x0, dtype=float)
-    B = x0.shape[0]
+    xs = np.asarray(x0, dtype=float).tolist()
+    B = len(xs)
     per = B // len(rngs)
-    w = np.broadcast_to(np.asarray(width, dtype=float), (B,))
-    rows = 3 + 3 * spec  # uniforms drawn at once: level, interval, budget, three rounds of shrinkage
+    ws = np.broadcast_to(np.asarray(width, dtype=float), (B,)).tolist()
+    rows = 3 + 2 * spec  # uniforms drawn at once per scalar: level, interval, budget, two shrinkage rounds
+    if len(rngs) == 1:
+        U = rngs[0].random((B, rows)).tolist()
+    else:
+        U = np.concatenate([r.random((per, rows)) for r in rngs]).tolist()
+    gens = [_slice_one(xs[b], ws[b], U[b], rngs[b // per], max_steps, ahead, spec) for b in range(B)]
+    reqs = [next(g) for g in gens]
+    out, n_eval = list(xs), [0] * B
+    active = list(range(B))
+    while active:
+        m = max(len(reqs[b]) for b in active)
+        cols = []
+        for b in range(B):
+            r = reqs[b] if reqs[b] is not None else []
+            cols.append(r + [xs[b]] * (m - len(r)))
+        F = logf(np.array(cols).T).T.tolist()
+        still = []
+        for b in active:
+            try:
+                reqs[b] = gens[b].send(F[b][:len(reqs[b])])
+                still.append(b)
+            except StopIteration as stop:
+                out[b], n_eval[b] = stop.value
+                reqs[b] = None
+        active = still
+    return np.array(out), np.array(n_eval)
 
-    def uniforms(k: int) -> np.ndarray:
-        if len(rngs) == 1:
-            return rngs[0].random((k, B))
-        return np.concatenate([r.random((k, per)) for r in rngs], axis=1)
 
-    U = uniforms(rows)
-    e = -np.log1p(-U[0])  # standard exponential (inverse cdf)
-    lo0 = x0 - w * U[1]
-    hi0 = lo0 + w
-    jl = np.floor(max_steps * U[2]).astype(np.int64)  # stepping-out budgets, left and right
+def _slice_one(x0: float, w: float, u: list, rng, max_steps: int, ahead: int, spec: int):
+    """One scalar's slice update as a generator: yields lists of points, receives their log densities.
+
+    Same steps as :func:`slice_step` (stepping out, then shrinkage); points
+    that may be needed soon are requested together (see :func:`slice_step_vec`).
+    Returns ``(new value, evaluations slice_step would have made)``.
+    """
+    pos = 0
+
+    def uniform() -> float:
+        nonlocal pos, u
+        if pos == len(u):
+            u, pos = rng.random(2 * spec).tolist(), 0
+        pos += 1
+        return u[pos - 1]
+
+    e = -math.log1p(-uniform())  # standard exponential (inverse cdf)
+    lo = x0 - w * uniform()
+    hi = lo + w
+    jl = int(max_steps * uniform())  # stepping-out budgets (floor of a non-negative value)
     jr = max_steps - 1 - jl
-    steps = np.arange(ahead + 1)[:, None] * w  # (ahead + 1, B)
-    F = logf(np.concatenate([x0[None], lo0 - steps, hi0 + steps]))
+    K = ahead + 1
+    F = yield [x0] + [lo - s * w for s in range(K)] + [hi + s * w for s in range(K)]
     f0 = F[0]
-    if not np.all(np.isfinite(f0)):
+    if not math.isfinite(f0):
         raise FloatingPointError(f"slice sampler started at a point of zero density (x={x0!r})")
     level = f0 - e
-    n_eval = np.ones(B, np.int64)
-    # stepping out from the cached positions s = 0..ahead on each side
-    sides = []
-    for Fs, j in ((F[1:ahead + 2], jl), (F[ahead + 2:], jr)):
-        inside = Fs > level
-        first_out = np.where(inside.all(axis=0), ahead + 1, np.argmin(inside, axis=0))
-        s = np.minimum(j, first_out)  # steps taken
-        n_eval += np.minimum(j, first_out + 1)
-        sides.append(s)
-    sl, sr = sides
-    more_l = (sl == ahead + 1) & (jl > ahead + 1)  # still inside after the cache, budget left
-    more_r = (sr == ahead + 1) & (jr > ahead + 1)
-    while more_l.any() or more_r.any():  # rare: step out one position per call
-        G = logf(np.stack([lo0 - sl * w, hi0 + sr * w]))
-        n_eval += more_l
-        n_eval += more_r
-        more_l &= G[0] > level
-        more_r &= G[1] > level
-        sl = sl + more_l
-        sr = sr + more_r
-        more_l &= sl < jl
-        more_r &= sr < jr
-    lo = lo0 - sl * w
-    hi = hi0 + sr * w
-    # shrinkage, ``spec`` candidates per call (each assumes the ones before it are rejected)
-    out = x0.copy()
-    todo = np.ones(B, bool)
-    cols = np.arange(B)
-    U = U[3:]
-    for _ in range(200 // spec + 1):
-        if len(U) < spec:
-            U = uniforms(3 * spec)
-        cands = np.empty((spec, B))
-        for r in range(spec):
-            c = lo + (hi - lo) * U[r]
-            cands[r] = c
-            left = c < x0
-            lo = np.where(left, c, lo)
-            hi = np.where(left, hi, c)
-        U = U[spec:]
-        acc = logf(cands) > level
-        hit = acc.any(axis=0)
-        first = np.argmax(acc, axis=0)
-        n_eval += np.where(todo, np.where(hit, first + 1, spec), 0)
-        take = todo & hit
-        out = np.where(take, cands[first, cols], out)
-        todo &= ~hit
-        if not todo.any():
+    n = 1
+    fl, fr = F[1:K + 1], F[K + 1:]
+    k = 0
+    while jl > 0:
+        if k == len(fl):
+            fl, k = (yield [lo - s * w for s in range(K)]), 0
+        n += 1
+        if not fl[k] > level:
             break
-    return out, n_eval
+        lo -= w
+        jl -= 1
+        k += 1
+    k = 0
+    while jr > 0:
+        if k == len(fr):
+            fr, k = (yield [hi + s * w for s in range(K)]), 0
+        n += 1
+        if not fr[k] > level:
+            break
+        hi += w
+        jr -= 1
+        k += 1
+    while True:
+        cands = []
+        a, b = lo, hi
+        for _ in range(spec):  # each candidate assumes the ones before it are rejected
+            c = a + (b - a) * uniform()
+            cands.append(c)
+            if c < x0:
+                a = c
+            else:
+                b = c
+        G = yield cands
+        for c, g in zip(cands, G):
+            n += 1
+            if g > level:
+                return c, n
+            if c < x0:
+                lo = c
+            else:
+                hi = c
+        if hi - lo <= 1e-12 * (1.0 + abs(x0)):  # pragma: no cover - shrinkage collapsed numerically
+            return x0, n
 
 
 # --------------------------------------------------------------------------

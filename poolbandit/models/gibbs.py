@@ -316,15 +316,6 @@ class GibbsSampler:
             for bi, j in enumerate(grp.members):
                 self._where[j] = (gi, bi)
         self._gs = [self._s[:, grp.idx] for grp in self._groups]
-        # slice widths of log tau_p from the data only: about 2.5 posterior sds when n_p participants
-        # have data on coefficient p (the sd of a log scale estimated from n_p groups is near 1 / sqrt(2 n_p))
-        if not n:
-            n_p = np.zeros(P)
-        elif data.outcome == "gaussian":  # positive weights: X_i'X_i has a positive diagonal entry
-            n_p = (np.diagonal(self._S, axis1=1, axis2=2) > 0).sum(axis=0)
-        else:
-            n_p = (self._G @ (X != 0).astype(float) > 0).sum(axis=0)
-        self._tau_width = np.clip(2.5 / np.sqrt(n_p + 1.0), 0.1, 1.0)
         if data.outcome == "gaussian":
             self._gS = [self._S.reshape(N, P * P)[:, grp.flat].reshape(N, len(grp.members), grp.k, grp.k)
                         for grp in self._groups]
@@ -624,8 +615,9 @@ class GibbsSampler:
                     g2 = np.moveaxis(g2, 0, 1).reshape(N, C * R)
                     kk = np.moveaxis(kk, 0, 1).reshape(N, C * R)
                 logf = self._tau_logf(kk, g2, wts)
-                x, k = gm.slice_step_vec(np.log(self._tau[:, coefs]).ravel(), logf, self._rngs,
-                                         width=np.tile(self._tau_width[coefs], C))
+                # width 1 on log tau: its conditional can have a long left tail (tau near 0), which a
+                # narrower width would cut short through the stepping-out budget
+                x, k = gm.slice_step_vec(np.log(self._tau[:, coefs]).ravel(), logf, self._rngs)
                 self._count(k)
                 tau = self._tau.copy()
                 tau[:, coefs] = np.exp(x).reshape(C, R)
@@ -816,8 +808,10 @@ class GibbsSampler:
                        + np.sum(prior(np.sqrt(v)) - 0.5 * np.log(v), axis=-1))
                 return np.where(ok, out, -np.inf)
 
-            # the width is a function of the data and of the line's invariants tau_p^2 + sigma^2 only
-            width = 0.5 * np.mean(v0 + s0[:, None], axis=1) * min(1.0, 3.0 / math.sqrt(n_obs + 1))
+            # the width is a function of the line's invariants tau_p^2 + sigma^2 only; it stays wide
+            # because the conditional can also have a spike at an end of the line (the Jacobian
+            # 1 / (2 tau_p) of the variance coordinates), a second piece of the slice to reach
+            width = 0.5 * np.mean(v0 + s0[:, None], axis=1)
             t, k = gm.slice_step_vec(np.zeros(C), logf_ridge, self._rngs, width=width)
             tau = self._tau.copy()
             tau[:, rnd] = np.sqrt(v0 - t[:, None])
