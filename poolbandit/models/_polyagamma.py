@@ -25,7 +25,10 @@ def draw_pg(h: np.ndarray | float, c: np.ndarray, rng: np.random.Generator) -> n
     c = np.asarray(c, dtype=float)
     if c.size == 0:
         return np.zeros(c.shape)
-    out = random_polyagamma(h, c, random_state=rng)
+    if np.ndim(h) == 0 and float(h) == 1.0:  # Devroye's exact sampler for PG(1, c): the fastest here
+        out = random_polyagamma(1.0, c, method="devroye", random_state=rng)
+    else:
+        out = random_polyagamma(h, c, random_state=rng)
     return np.asarray(out, dtype=float).reshape(np.broadcast(np.asarray(h), c).shape)
 
 
