@@ -175,10 +175,21 @@ def agreement(classification, intake: pd.Series | Mapping[str, str], *, level: f
         Intake category by participant id (missing answers as NaN/None).
     level : float, default=0.95
         Confidence level of kappa's interval.
+
+    Raises
+    ------
+    LogError
+        If an answer is not one of the category names (each bad answer by participant and value).
     """
     intake = pd.Series(intake, dtype=object) if not isinstance(intake, pd.Series) else intake.astype(object)
     intake = intake.dropna()
     names = [c.name for c in classification.categories]
+    bad = intake[~intake.isin(names)]
+    if len(bad):
+        raise LogError([f"participant {format_value(p)}: expected one of {', '.join(names)}, got {format_value(v)}"
+                        for p, v in bad.iloc[:20].items()]
+                       + ([f"{len(bad) - 20} more answers that are not categories"] if len(bad) > 20 else []),
+                       source="intake")
     labels = classification.labels.set_index("participant")["label"]
     table = confusion_table(labels, intake, names)
     square = table.loc[names, names].to_numpy()
