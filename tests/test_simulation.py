@@ -103,9 +103,9 @@ def test_bernoulli_outcome(demo_design):
     (binomial test at level 0.001)."""
     text = demo_design.source_text.replace('outcome = "gaussian"', 'outcome = "bernoulli"').replace(
         'reward = "log_minutes"', 'reward = "met_goal"')
-    text = text.replace("arm_means = [3.0, 2.2, 2.2]", "arm_means = [0.8, -0.2, -0.2]").replace(
-        "arm_means = [2.2, 3.0, 2.2]", "arm_means = [-0.2, 0.8, -0.2]").replace(
-        "arm_means = [2.2, 2.2, 3.0]", "arm_means = [-0.2, -0.2, 0.8]").replace(
+    text = text.replace("arm_means = [3.2, 2.2, 2.2]", "arm_means = [0.8, -0.2, -0.2]").replace(
+        "arm_means = [2.2, 3.2, 2.2]", "arm_means = [-0.2, 0.8, -0.2]").replace(
+        "arm_means = [2.2, 2.2, 3.2]", "arm_means = [-0.2, -0.2, 0.8]").replace(
         "arm_means = [2.4, 2.4, 2.4]", "arm_means = [0.0, 0.0, 0.0]")
     design = parse_design(text)
     res = simulate(design, "solo", 4, size=150)

@@ -84,8 +84,8 @@ def _study_policy(design, wanted: str | None, runnable: list[str]) -> str:
         if wanted not in runnable:
             raise InputError(f"--study-policy: policy {wanted!r} cannot run in this version")
         return wanted
-    for name in runnable:
-        if design.policies[name].kind == "pooled-thompson":
+    for name in runnable:  # the design's first pooled policy (the recommended default comes first)
+        if design.policies[name].kind.startswith("pooled-"):
             return name
     return next((n for n in runnable if design.policies[n].kind != "random"), runnable[0])
 
