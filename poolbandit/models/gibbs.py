@@ -835,19 +835,24 @@ class GibbsSampler:
 
     def _update_mean(self, Abs, Ls) -> None:
         C, N, P = self._theta.shape
-        Pm = np.zeros((C, N, P * P))
-        cm = np.zeros((C, N, P))
-        for grp, (A, b), L in zip(self._groups, Abs, Ls):
-            Pb, cb = gm.group_mean_precision(A, b, L)
-            Pm[:, :, grp.flat] = Pb.reshape(C, N, -1)
-            cm[:, :, grp.idx.ravel()] = cb.reshape(C, N, -1)
         Z = self._Z
         a = Z.shape[1]
         D = a * P
-        if a == 1:
-            prec = Pm.sum(axis=1).reshape(C, P, P)
-            lin = cm.sum(axis=1)
+        if a == 1:  # no covariates: only the sums over participants are needed
+            prec = np.zeros((C, P * P))
+            lin = np.zeros((C, P))
+            for grp, (A, b), L in zip(self._groups, Abs, Ls):
+                Pb, cb = gm.group_mean_precision(A, b, L)
+                prec[:, grp.flat] = np.broadcast_to(Pb.sum(axis=1), (C,) + Pb.shape[2:]).reshape(C, -1)
+                lin[:, grp.idx.ravel()] = np.broadcast_to(cb.sum(axis=1), (C,) + cb.shape[2:]).reshape(C, -1)
+            prec = prec.reshape(C, P, P)
         else:
+            Pm = np.zeros((C, N, P * P))
+            cm = np.zeros((C, N, P))
+            for grp, (A, b), L in zip(self._groups, Abs, Ls):
+                Pb, cb = gm.group_mean_precision(A, b, L)
+                Pm[:, :, grp.flat] = np.broadcast_to(Pb, (C,) + Pb.shape[1:]).reshape(C, N, -1)
+                cm[:, :, grp.idx.ravel()] = np.broadcast_to(cb, (C,) + cb.shape[1:]).reshape(C, N, -1)
             # sum_i (z_i z_i') (x) P_i, ordered (covariate slot, coefficient)
             zz = (Z[:, :, None] * Z[:, None, :]).reshape(N, a * a)
             prec = np.einsum("nz,cnf->czf", zz, Pm).reshape(C, a, a, P, P).transpose(0, 1, 3, 2, 4).reshape(C, D, D)
