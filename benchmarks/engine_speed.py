@@ -7,7 +7,10 @@ Prints
    the largest R-hat over the heterogeneity scales tau, the worst ESS per sweep
    over tau, and sweeps per second;
 2. the fast engine at N = 10,000 participants and K = 4 arms (21 decisions
-   each): sweeps per second and peak traced memory (tracemalloc);
+   each): sweeps per second and peak traced memory (tracemalloc); and on the
+   demo design (3 arms x (1 + 2 features), 80 participants; its three 3 x 3
+   coefficient blocks) with a diagonal and a full covariance: sweeps per
+   second of one chain (:func:`demo_speed`);
 3. effective draws per second (worst tau) of the fast engine and of PyMC NUTS
    on the whole 60 x 21 x 3 study, NUTS counting its compilation, and their
    ratio (:func:`nuts_section`).
@@ -31,7 +34,7 @@ from poolbandit.spec import parse_design
 
 warnings.filterwarnings("ignore", message=".*ArviZ is undergoing a major refactor.*")
 
-__all__ = ["study_design", "mixing_table", "large_scale", "nuts_section", "main"]
+__all__ = ["study_design", "mixing_table", "large_scale", "demo_speed", "nuts_section", "main"]
 
 _TOML = """
 [study]
@@ -86,6 +89,26 @@ def large_scale(*, size: int = 10_000, n_arms: int = 4, sweeps: int = 50, seed: 
     _, peak = tracemalloc.get_traced_memory()
     tracemalloc.stop()
     return len(data.y), sweeps / elapsed, peak / 2**20
+
+
+def demo_speed(*, sweeps: int = 40, seed: int = 5) -> list[tuple[str, float]]:
+    """Sweeps per second of one chain on the demo design's simulated study (after 20 warm-up sweeps)."""
+    import dataclasses
+
+    from poolbandit.spec import default_design
+
+    design = default_design()
+    log = simulate(design, "control", rng=seed).log
+    data = ModelData.from_log(log, design)
+    rows = []
+    for cov, n in (("diagonal", sweeps), ("full", max(sweeps // 8, 3))):
+        priors = dataclasses.replace(design.priors, covariance=cov)
+        sampler = GibbsSampler(data, priors, rng=seed)
+        sampler.sweep(20 if cov == "diagonal" else 3)
+        start = time.perf_counter()
+        sampler.sweep(n)
+        rows.append((cov, n / (time.perf_counter() - start)))
+    return rows
 
 
 def nuts_section(fast_rows=None, *, quick: bool = False, seed: int = 20260101) -> list[tuple]:
@@ -155,6 +178,9 @@ def main(argv=None) -> None:
     n_obs, speed, peak = large_scale(sweeps=10 if args.quick else 50)
     print(f"\nfast engine at N = 10,000 participants, K = 4 arms, {n_obs} observations (gaussian):")
     print(f"  sweeps per second: {speed:.1f}   peak traced memory: {peak:.0f} MB")
+    print("\nfast engine on the demo design (80 participants, three 3 x 3 coefficient blocks), one chain:")
+    for cov, rate in demo_speed(sweeps=20 if args.quick else 40):
+        print(f"  {cov:>8} covariance: {rate:.1f} sweeps per second")
     nuts_section(rows["gaussian"], quick=args.quick)
 
 
