@@ -40,6 +40,12 @@ Per sweep (all steps vectorised over participants):
    w_i`` the participant blocks are Gaussian, so the marginal likelihood is a
    sum of per-participant terms with ``P x P`` determinants (see
    :mod:`._gibbs_math`);
+   then (gaussian with unknown noise) one more slice update of the same
+   collapsed conditional along a fixed line through ``(tau, sigma)``: the
+   variances ``tau_p^2 - t, sigma^2 + t`` when every random coefficient is its
+   own block (the ridge ``tau_p^2 + sigma^2 = const`` that the data identify
+   when participants have one or two observations each), else ``log tau_p -
+   t, log sigma + t``;
 3. ``(beta, Gamma)`` jointly from their Gaussian conditional, again with
    ``theta`` integrated out;
 4. every ``theta_i`` from its Gaussian full conditional.
@@ -52,6 +58,12 @@ participant has only one or two observations (Papaspiliopoulos, Roberts and
 Skold [6]_) does not arise. Coefficient blocks that the data do not couple
 (``X_i'X_i`` is block diagonal by arm for design data) are handled separately,
 so updating one ``tau_p`` costs ``O(N k^3)`` for its block of size ``k``.
+With a diagonal covariance the other scales of the block are integrated out
+first, which leaves a scalar-block formula per slice evaluation, and the
+blocks of equal size are updated in lockstep (they are independent given
+``beta, Gamma, sigma``); the noise scale's evaluations use eigen-terms of each
+block computed once per sweep. :func:`sample_fast` runs its chains in lockstep
+too (one array operation serves all chains; each chain keeps its own stream).
 
 References
 ----------
