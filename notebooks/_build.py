@@ -50,7 +50,7 @@ DESIGN = [
     5. tune one policy with a sweep;
     6. decide, then check the power of a two-group study (adaptive against random control).
 
-    **Run time.** The settings in the next cell are small so that the notebook runs in about a
+    **Run time.** The settings in the next cell are small so that the notebook runs in under a
     minute on a 2-core laptop. For a real decision raise `REPLICATES` to 100 or more,
     `LEARNERS` to the design's 80 and `POWER_REPLICATES` to 500; the same code then runs for
     tens of minutes on a laptop, or on a Dask cluster with `compare(..., scheduler="tcp://host:8786")`.
@@ -100,12 +100,16 @@ DESIGN = [
           f"{pop.waves} waves, sessions happen with probability {pop.adherence}, noise sd {pop.noise_sd}")
     types = pd.DataFrame([{"type": t.name, "share": t.share, **dict(zip(base.arms, t.arm_means))}
                           for t in pop.types]).set_index("type")
+    means = sorted(pop.types[0].arm_means)
+    gap = means[-1] - means[-2]
+    print(f"a leaning type's favourite format is {gap:g} log-minutes better than the others: "
+          f"{gap / pop.noise_sd:.2f} noise standard deviations")
     types
     """),
     _md("""
-    A leaning type's favourite format is 0.8 log-minutes better than the others: about one noise
-    standard deviation (0.8). That is the size of effect at which, in simulation, a pooled design
-    labels roughly half of the learners confidently by day 28.
+    The scenario chose a type effect of about one noise standard deviation so that a pooled design
+    can label about half of the learners confidently by day 28 (half that effect would label fewer
+    than one in ten); the comparison below shows how close each policy gets.
 
     We adjust the design in two ways and save it as our own file:
 
@@ -266,7 +270,7 @@ DESIGN = [
 
     table = comparison.summary.set_index("policy")
     table["lowest_probability"] = pd.Series(floors)
-    table["analysable"] = table["lowest_probability"] >= 0.02
+    table["analysable"] = table["lowest_probability"].round(9) >= 0.02   # a floor of exactly 0.02 passes
     table["useful"] = table["gain"] > 2 * table["gain_se"]
     no_information = 1 - 1 / len(design.categories)   # Brier score of probability 1/C on each of C categories
     table["informative"] = table["brier"] < no_information
@@ -387,7 +391,7 @@ STUDY = [
 
     Only the outcomes are simulated: a simulated population of learners stands in for the app's
     users. The study is a pilot (24 learners in two waves, 14 days each) so that the notebook runs in
-    about a minute; the same loop runs the full design (80 learners, 28 days).
+    well under a minute; the same loop runs the full design (80 learners, 28 days).
 
     Every command has a command-line twin (`poolbandit study init|enroll|assign|record|status|export|verify
     --db PATH`) that takes the same CSV files.
@@ -434,6 +438,9 @@ STUDY = [
     db = work / "study.sqlite"
     pooled = next(name for name, spec in design.policies.items() if spec.kind == "pooled-thompson")
     info = study.init_study(design_path, db, policy=pooled)   # pooled Thompson sampling runs the adaptive group
+    spec = design.policies[pooled]
+    print(f"adaptive group: {pooled} ({spec.kind}), forced exploration for the first {spec.explore_first} "
+          f"decisions, probabilities clipped to {spec.clip}")
     info
     """),
     _md("""
@@ -506,9 +513,9 @@ STUDY = [
     """),
     _md("""
     The first three days, and what `assign` returned on day 2: the arm, the exact probability with
-    which it was drawn, and the condition. The pooled policy starts with three days of forced
-    exploration, each format once in random order, so on the third day the remaining format is
-    given with probability 1; control learners always get each format with probability 1/3.
+    which it was drawn, and the condition. The pooled policy starts with forced exploration, each
+    format once in random order, so on the third day the remaining format is given with probability 1;
+    control learners always get each format with probability 1/3.
     """),
     _code("""
     for day in range(2):
@@ -605,9 +612,8 @@ STUDY = [
     _md("""
     Each row below is a learner, each cell a study day, coloured by the format given (pale: the
     session was missed). The second wave starts a week later; random-control learners are at the
-    bottom. The right panel shows the logged probability of each chosen format: the pooled policy
-    stays inside its clip band `[0.05, 0.9]` after three days of forced exploration, control stays
-    at 1/3.
+    bottom. The right panel shows the logged probability of each chosen format: after its forced
+    exploration the pooled policy stays inside its clip band (dashed lines); control stays at 1/3.
     """),
     _code("""
     order = log.drop_duplicates("participant").sort_values(["condition", "step"])["participant"].tolist()
@@ -637,7 +643,7 @@ STUDY = [
         part = log[log["condition"] == cond]
         jitter = np.random.default_rng(SEED).uniform(-0.25, 0.25, len(part))
         b.scatter(part["decision"] + jitter, part["propensity"], s=10, alpha=0.5, marker=marker, label=cond)
-    for y in (0.05, 0.9):
+    for y in spec.clip or ():
         b.axhline(y, ls="--", lw=0.8, color="0.4")
     b.set_xlabel("decision")
     b.set_ylabel("probability of the format given")
@@ -680,8 +686,8 @@ REPORT = [
     simulated truth. For a real study, read the export of notebook 2 instead:
     `log = pb.read_log("log.csv", pb.load_design("design-from-study.toml"))`.
 
-    **Run time.** 40 learners and 2 chains x 500 draws keep the notebook at about a minute and a half
-    on 2 cores (most of it PyMC compiling and sampling). For a report, use every learner and
+    **Run time.** 40 learners and 2 chains x 500 draws keep the notebook under a minute on 2 cores
+    (most of it PyMC compiling and sampling). For a report, use every learner and
     4 chains x 1000 draws (`CHAINS`, `DRAWS` below).
     """),
     _code("""
