@@ -11,6 +11,8 @@ Scenarios (N participants, K arms, horizon T, gaussian rewards, noise sd 1):
 * A: N = 60, K = 3, T = 21, arm means (0, 0.3, -0.2), heterogeneity 0.5 on
   every arm. Targets: pooled <= 0.95 x unpooled, pooled <= 1.06 x oracle prior.
 * D: as A with heterogeneity 0.15. Target: pooled <= 0.55 x unpooled.
+  (A and D are ``poolbandit.simulation.scenarios.pooling_scenario``; its
+  default policies are these four: pooled, unpooled, oracle-prior, complete.)
 * B (context): the best arm flips on weekends; pooled with the weekend
   feature against pooled with ``context = false``.
 * C (covariate): a participant covariate shifts the arm effects; a second
@@ -31,44 +33,12 @@ import numpy as np
 from poolbandit._random import spawn
 from poolbandit.policies.base import Batch
 from poolbandit.policies.registry import make_policy
-from poolbandit.simulation import draw_population, draw_streams, replicate_metrics, run_policy
+from poolbandit.simulation import draw_population, draw_streams
 from poolbandit.simulation.runner import context_for
+from poolbandit.simulation.scenarios import paired_ratio, paired_replicates, pooling_scenario
 from poolbandit.spec import parse_design
 
 __all__: list[str] = []
-
-_POLICIES = """
-[policies.pooled]
-kind = "pooled-thompson"
-[policies.unpooled]
-kind = "thompson"
-model = "normal"
-prior_mean = 0.0
-prior_sd = 1.0
-noise_sd = 1.0
-[policies.oracle-prior]
-kind = "oracle-prior-thompson"
-[policies.complete]
-kind = "complete-pooling-thompson"
-prior_sd = 1.0
-noise_sd = 1.0
-"""
-
-
-def scenario_design(sd: float, *, size: int = 60, horizon: int = 21):
-    """Scenarios A (sd 0.5) and D (sd 0.15)."""
-    return parse_design(f"""
-[study]
-arms = ["drill", "story", "roleplay"]
-horizon = {horizon}
-[population]
-size = {size}
-arm_means = [0.0, 0.3, -0.2]
-arm_sd = [{sd}, {sd}, {sd}]
-noise_sd = 1.0
-{_POLICIES}
-""")
-
 
 def context_design(*, size: int = 60, horizon: int = 21):
     """Scenario B: story best on weekdays (0.3 vs 0), roleplay on weekends (0.8 vs 0)."""
@@ -118,27 +88,9 @@ covariates = false
 """)
 
 
-def ratio_se(num: np.ndarray, den: np.ndarray) -> tuple[float, float]:
-    """Ratio of means of paired replicates and its delta-method standard error."""
-    num, den = np.asarray(num, float), np.asarray(den, float)
-    r = num.mean() / den.mean()
-    resid = num - r * den
-    return float(r), float(resid.std(ddof=1) / np.sqrt(len(num)) / den.mean())
-
-
-def run_regret(design, replicates: int, seed: int, names=None) -> dict[str, np.ndarray]:
-    """Mean cumulative regret per participant, one value per replicate and policy (paired)."""
-    names = list(names or design.policies)
-    out = {name: np.empty(replicates) for name in names}
-    for r, g in enumerate(spawn(seed, replicates)):
-        g_pop, g_env, g_pol = spawn(g, 3)
-        pop = draw_population(design, g_pop)
-        streams = draw_streams(design, pop.size, g_env)
-        for j, name in enumerate(names):
-            # every policy gets its own stream derived from the replicate's policy seed
-            res = run_policy(design, design.policy(name), pop, streams, spawn(g_pol, len(names))[j])
-            out[name][r] = replicate_metrics(res)["regret"]
-    return out
+def _regret(design, replicates: int, seed: int) -> dict[str, np.ndarray]:
+    """Mean cumulative regret per participant of every policy, one value per paired replicate."""
+    return paired_replicates(design, list(design.policies), replicates, seed)
 
 
 def early_classification(design, name: str, population, streams, rng, *, wave_step: int, after: int) -> float:
@@ -197,7 +149,7 @@ def _report(title: str, res: dict[str, np.ndarray], base: str, targets: dict[str
     for name, v in res.items():
         if name == base:
             continue
-        r, se = ratio_se(res[base], v)
+        r, se = paired_ratio(res[base], v)
         target = targets.get(name)
         note = f"  target <= {target}: {'met' if r <= target else 'NOT met'}" if target else ""
         print(f"  {base} / {name:<14} = {r:.3f} (se {se:.3f}){note}")
@@ -212,13 +164,13 @@ def main(argv=None) -> None:
     parts = set(args.only.split(","))
     t0 = time.perf_counter()
     if "A" in parts:
-        res = run_regret(scenario_design(0.5), args.replicates, args.seed)
+        res = _regret(pooling_scenario("A"), args.replicates, args.seed)
         _report("Scenario A: heterogeneity 0.5", res, "pooled", {"unpooled": 0.95, "oracle-prior": 1.06})
     if "D" in parts:
-        res = run_regret(scenario_design(0.15), args.replicates, args.seed + 1)
+        res = _regret(pooling_scenario("D"), args.replicates, args.seed + 1)
         _report("Scenario D: heterogeneity 0.15", res, "pooled", {"unpooled": 0.55})
     if "B" in parts:
-        res = run_regret(context_design(), args.replicates, args.seed + 2)
+        res = _regret(context_design(), args.replicates, args.seed + 2)
         _report("Scenario B: best arm flips on weekends", res, "contextual", {"context-blind": 1.0})
     if "C" in parts:
         res = run_classification(covariate_design(), args.replicates, args.seed + 3)
@@ -226,7 +178,7 @@ def main(argv=None) -> None:
         for name, v in res.items():
             print(f"  {name:<18} share of wave 2 with correct posterior-best arm after 3 decisions "
                   f"{v.mean():.3f} (se {v.std(ddof=1) / np.sqrt(len(v)):.3f})")
-        r, se = ratio_se(res["with-covariate"], res["without-covariate"])
+        r, se = paired_ratio(res["with-covariate"], res["without-covariate"])
         print(f"  with / without = {r:.3f} (se {se:.3f})")
     print(f"\n(total {time.perf_counter() - t0:.0f} s)")
 

@@ -142,7 +142,7 @@ def reference_study(
     noise_sd: float = 1.0,
     policies: Mapping[str, str | Mapping[str, Any]] | None = None,
     categories: str = "",
-    source: str = "<reference study>",
+    source: str | None = None,
 ) -> DesignSpec:
     """The reference study: ``size`` participants x ``horizon`` decisions x K arms.
 
@@ -171,7 +171,7 @@ def reference_study(
         string). Default ``{"control": {"kind": "random"}}``.
     categories : str
         ``[[categories]]`` tables to append (see :func:`preference_categories`).
-    source : str
+    source : str, optional
         The label of the design in error messages (``DesignSpec.source``).
 
     Returns
@@ -200,6 +200,7 @@ def pooling_scenario(
     size: int | None = None,
     policies: Mapping[str, str | Mapping[str, Any]] | None = None,
     categories: str = "",
+    source: str | None = None,
 ) -> DesignSpec:
     """A scenario of the pooling spectrum (gaussian rewards, noise sd 1, adherence 1, no dropout, one wave).
 
@@ -228,6 +229,8 @@ def pooling_scenario(
         (``pooled``, ``unpooled``, ``oracle-prior``, ``complete``).
     categories : str
         ``[[categories]]`` tables to append (see :func:`preference_categories`).
+    source : str, optional
+        The label of the design in error messages.
 
     Returns
     -------
@@ -240,7 +243,7 @@ def pooling_scenario(
         size=p["size"] if size is None else size, horizon=p["horizon"], arms=p["arms"], arm_means=p["arm_means"],
         heterogeneity=p["heterogeneity"], noise_sd=1.0,
         policies=POOLING_POLICIES if policies is None else policies, categories=categories,
-        source=f"<pooling scenario {name}>")
+        source=source)
 
 
 def latent_types_scenario(
@@ -249,6 +252,7 @@ def latent_types_scenario(
     population: str = "types",
     title: str = "",
     seed: int | None = None,
+    source: str | None = None,
 ) -> DesignSpec:
     """The calibration scenario: four latent types of participant, data from pooled Thompson sampling.
 
@@ -278,6 +282,8 @@ def latent_types_scenario(
         ``[study] title``.
     seed : int, optional
         ``[study] seed``.
+    source : str, optional
+        The label of the design in error messages.
 
     Returns
     -------
@@ -307,7 +313,7 @@ def latent_types_scenario(
         _table("study", study), "[population]", *pop, *types, _table("priors", {"beta_sd": 3.0}),
         _policies(policies), preference_categories(ARMS, margin=0.2, name="{arm}-leaning"),
     ]) + "\n"
-    return parse_design(text, source=f"<latent types scenario: {population}>")
+    return parse_design(text, source=source)
 
 
 # --------------------------------------------------------------------------

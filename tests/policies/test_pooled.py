@@ -20,7 +20,8 @@ from poolbandit.models.design_matrix import design_rows
 from poolbandit.policies import Batch, make_policy
 from poolbandit.policies._gaussian import prob_best_correlated, prob_best_normal
 from poolbandit.policies._probability import draw_arms, prob_best
-from poolbandit.simulation import draw_population, draw_streams, replicate_metrics, run_policy
+from poolbandit.simulation import draw_population, draw_streams, run_policy
+from poolbandit.simulation.scenarios import paired_ratio, paired_replicates, pooling_scenario
 
 SMALL = """
 [study]
@@ -414,36 +415,13 @@ def test_oracle_prior_refuses_bernoulli():
 # --------------------------------------------------------------------------
 # Pooling pays; context and covariates are used (small seeded versions of the benchmark)
 # --------------------------------------------------------------------------
-def _paired_regret(design, names, replicates, seed):
-    out = {n: [] for n in names}
-    for g in spawn(seed, replicates):
-        g_pop, g_env, g_pol = spawn(g, 3)
-        pop = draw_population(design, g_pop)
-        streams = draw_streams(design, pop.size, g_env)
-        for j, name in enumerate(names):
-            res = run_policy(design, design.policy(name), pop, streams, spawn(g_pol, len(names))[j])
-            out[name].append(replicate_metrics(res)["regret"])
-    return {n: np.array(v) for n, v in out.items()}
-
-
-def _ratio(num, den):
-    r = num.mean() / den.mean()
-    return r, (num - r * den).std(ddof=1) / np.sqrt(len(num)) / den.mean()
-
-
 def test_pooling_pays_when_heterogeneity_is_small():
     """Scenario D of benchmarks/pooling_regret.py, 4 paired replicates (common random numbers):
     pooled Thompson's mean cumulative regret is at most 0.55 x unpooled Thompson's (N(0,1)
     prior, known noise 1), the project's target; the 40-replicate benchmark measures 0.45 (se
     0.017). Also the ratio is below 1 by more than 3 standard errors (delta method)."""
-    import sys
-    from pathlib import Path
-
-    sys.path.insert(0, str(Path(__file__).resolve().parents[2] / "benchmarks"))
-    from pooling_regret import scenario_design
-
-    res = _paired_regret(scenario_design(0.15), ["pooled", "unpooled"], 4, 20261202)
-    r, se = _ratio(res["pooled"], res["unpooled"])
+    res = paired_replicates(pooling_scenario("D"), ["pooled", "unpooled"], 4, 20261202)
+    r, se = paired_ratio(res["pooled"], res["unpooled"])
     assert r <= 0.55 and r + 3 * se < 1.0, (r, se)
 
 
@@ -460,8 +438,8 @@ def test_context_and_covariates_are_used():
     sys.path.insert(0, str(Path(__file__).resolve().parents[2] / "benchmarks"))
     from pooling_regret import context_design, covariate_design, run_classification
 
-    res = _paired_regret(context_design(), ["contextual", "context-blind"], 3, 7)
-    r, se = _ratio(res["contextual"], res["context-blind"])
+    res = paired_replicates(context_design(), ["contextual", "context-blind"], 3, 7)
+    r, se = paired_ratio(res["contextual"], res["context-blind"])
     assert r + 2 * se < 1.0, (r, se)
     cls = run_classification(covariate_design(), 2, 8)
     assert cls["with-covariate"].mean() > cls["without-covariate"].mean() + 0.1, cls
