@@ -3,9 +3,10 @@
 Every policy of a scenario runs on the same simulated populations and the
 same pre-drawn environment streams (common random numbers); ratios of mean
 cumulative regret per participant are printed with delta-method standard
-errors over the paired replicates (``ratio_se`` of ``pooling_regret.py``).
+errors over the paired replicates (``poolbandit.simulation.scenarios.paired_ratio``).
 
-Scenarios (gaussian rewards, noise sd 1, adherence 1, no dropout, one wave):
+Scenarios (gaussian rewards, noise sd 1, adherence 1, no dropout, one wave;
+``poolbandit.simulation.scenarios.pooling_scenario``):
 
 * A: N = 60, K = 3, T = 21, arm means (0, 0.3, -0.2), heterogeneity 0.5.
   Targets: best horizon-aware pooled rule <= 0.85 x best tuned classic and
@@ -37,20 +38,15 @@ Usage: ``python benchmarks/horizon_policies.py [--replicates R] [--seed S] [--wo
 from __future__ import annotations
 
 import argparse
-import sys
 import time
 from concurrent.futures import ProcessPoolExecutor
-from pathlib import Path
 
 import numpy as np
 
-sys.path.insert(0, str(Path(__file__).resolve().parent))
-
-from pooling_regret import ratio_se, scenario_design  # noqa: E402  (another benchmark's scenario helpers)
-
-from poolbandit._random import spawn  # noqa: E402
-from poolbandit.simulation import draw_population, draw_streams, replicate_metrics, run_policy  # noqa: E402
-from poolbandit.spec import parse_design  # noqa: E402
+from poolbandit._random import spawn
+from poolbandit.simulation import draw_population, draw_streams, replicate_metrics, run_policy
+from poolbandit.simulation.scenarios import (POOLING_SCENARIOS, paired_ratio, pooling_scenario,
+                                           preference_categories)
 
 __all__: list[str] = []
 
@@ -91,51 +87,21 @@ BRIER = ["pooled-thompson", "pooled-greedy", "pooled-bayes-ucb", "pooled-tempere
 HORIZON_RULES = [n for n in POOLED if n != "pooled-thompson"]
 
 
-def _policies_toml(table: dict[str, str]) -> str:
-    return "\n".join(f"[policies.{name}]\n{body}" for name, body in table.items())
-
-
-def design_text(*, arms, means, sd: float, size: int, horizon: int, policies: dict[str, str]) -> str:
-    """A scenario design (adherence 1, no dropout) with the given policies and the benchmark's categories."""
-    cats = "\n".join(f'[[categories]]\nname = "{a}-best"\nbest = "{a}"\nmargin = 0.1' for a in arms)
-    return f"""
-[study]
-arms = {list(arms)!r}
-horizon = {horizon}
-[population]
-size = {size}
-arm_means = {list(means)!r}
-arm_sd = {[sd] * len(arms)!r}
-noise_sd = 1.0
-{_policies_toml(policies)}
-{cats}
-[[categories]]
-name = "no-clear-preference"
-within = 0.1
-""".replace("'", '"')
-
-
 def scenario(key: str, *, size: int | None = None, replicates_policies: dict[str, str] | None = None):
-    """(design, policy specs) of scenario ``key``; A, D and E reuse ``pooling_regret.scenario_design``."""
+    """(design, policy specs) of pooling scenario ``key`` with the given policies and the benchmark's categories.
+
+    For A, D and E the population comes from the scenario with its default policies
+    (``pooling_scenario(key)``) and the policies from a second design of the same scenario.
+    """
     table = replicates_policies or {**CLASSIC, **POOLED, **FLOORLESS, **ORACLE}
-    arms3 = ["drill", "story", "roleplay"]
-    if key in ("A", "D", "E"):
-        sd = {"A": 0.5, "D": 0.15, "E": 1.0}[key]
-        design = scenario_design(sd, size=size or 60, horizon=21)
-        specs = parse_design(design_text(arms=arms3, means=[0.0, 0.3, -0.2], sd=sd, size=design.population.size,
-                                         horizon=21, policies=table))
-        return design, specs
-    if key == "F":
-        text = design_text(arms=["drill", "story", "roleplay", "quiz"], means=[0.0] * 4, sd=0.4, size=size or 80,
-                           horizon=28, policies=table)
-    elif key == "A2":
+    if key == "A2":
         table = {**table, "bayes-optimal": 'kind = "bayes-optimal"'}
-        text = design_text(arms=["drill", "story"], means=[0.0, 0.3], sd=0.5, size=size or 60, horizon=21,
-                           policies=table)
-    else:
+    elif key not in ("A", "D", "E", "F"):
         raise ValueError(f"unknown scenario {key!r}")
-    design = parse_design(text)
-    return design, design
+    arms = POOLING_SCENARIOS[key]["arms"]
+    specs = pooling_scenario(key, size=size, policies=table, categories=preference_categories(arms, margin=0.1))
+    design = pooling_scenario(key, size=size) if key in ("A", "D", "E") else specs
+    return design, specs
 
 
 def run_replicate(key: str, seed, *, size: int | None = None, policies: dict[str, str] | None = None,
@@ -206,7 +172,7 @@ def report(key: str, res: dict[str, dict[str, np.ndarray]], targets: dict[str, f
     for label, ref in pairs:
         if ref not in reg:
             continue
-        r, se = ratio_se(reg[best], reg[ref])
+        r, se = paired_ratio(reg[best], reg[ref])
         out[label] = r
         t = targets.get(label)
         note = f"  target <= {t}: {'met' if r <= t else 'NOT met'}" if t else ""
@@ -217,7 +183,7 @@ def report(key: str, res: dict[str, dict[str, np.ndarray]], targets: dict[str, f
         best0 = min(floorless, key=lambda n: reg[n].mean())
         for label, ref in pairs:
             if ref in reg:
-                r, se = ratio_se(reg[best0], reg[ref])
+                r, se = paired_ratio(reg[best0], reg[ref])
                 out[f"{label}_p0"] = r
                 t = targets.get(label)
                 note = f"  target <= {t}: {'met' if r <= t else 'NOT met'}" if t else ""
@@ -231,7 +197,7 @@ def report(key: str, res: dict[str, dict[str, np.ndarray]], targets: dict[str, f
         bo = reg["bayes-optimal"]
         for n in ["oracle-prior-kg-lookahead", "oracle-prior-kg-lookahead-p0", best, best0, "pooled-thompson",
                   classic]:
-            r, se = ratio_se(reg[n], bo)
+            r, se = paired_ratio(reg[n], bo)
             t = {"oracle-prior-kg-lookahead": 1.03, "oracle-prior-kg-lookahead-p0": 1.03, best: 1.25,
                  best0: 1.25}.get(n)
             note = f"  target <= {t}: {'met' if r <= t else 'NOT met'}" if t else ""

@@ -29,49 +29,31 @@ from poolbandit.policies.horizon import (
     mixture_quantile,
 )
 from poolbandit.simulation import draw_population, draw_streams, run_policy
+from poolbandit.simulation.scenarios import pooling_scenario, reference_study
 
-THREE = """
-[study]
-arms = ["a", "b", "c"]
-horizon = 12
-[population]
-size = 5
-arm_means = [0.0, 0.3, -0.2]
-arm_sd = [0.5, 0.5, 0.5]
-noise_sd = 1.0
-[policies.greedy]
-kind = "pooled-greedy"
-[policies.ucb]
-kind = "pooled-bayes-ucb"
-[policies.tempered]
-kind = "pooled-tempered-thompson"
-kappa = 0.5
-[policies.kg]
-kind = "pooled-knowledge-gradient"
-lookahead = 5
-[policies.ts]
-kind = "pooled-thompson"
-[policies.o-greedy]
-kind = "oracle-prior-greedy"
-[policies.o-ucb]
-kind = "oracle-prior-bayes-ucb"
-[policies.o-ucb-fixed]
-kind = "oracle-prior-bayes-ucb"
-quantile = 0.9
-p_min = 0.0
-[policies.o-tempered1]
-kind = "oracle-prior-tempered-thompson"
-kappa = 1.0
-p_min = 0.0
-[policies.o-ts]
-kind = "oracle-prior-thompson"
-[policies.o-kg]
-kind = "oracle-prior-knowledge-gradient"
-[policies.clipped]
-kind = "oracle-prior-greedy"
-p_min = 0.02
-clip = [0.1, 0.8]
-"""
+#: The reference study's population (arm means (0, 0.3, -0.2), heterogeneity 0.5, noise sd 1;
+#: poolbandit.simulation.scenarios.reference_study) with arms a, b, c, 5 participants, horizon 12.
+_THREE_POLICIES = {
+    "greedy": 'kind = "pooled-greedy"',
+    "ucb": 'kind = "pooled-bayes-ucb"',
+    "tempered": 'kind = "pooled-tempered-thompson"\nkappa = 0.5',
+    "kg": 'kind = "pooled-knowledge-gradient"\nlookahead = 5',
+    "ts": 'kind = "pooled-thompson"',
+    "o-greedy": 'kind = "oracle-prior-greedy"',
+    "o-ucb": 'kind = "oracle-prior-bayes-ucb"',
+    "o-ucb-fixed": 'kind = "oracle-prior-bayes-ucb"\nquantile = 0.9\np_min = 0.0',
+    "o-tempered1": 'kind = "oracle-prior-tempered-thompson"\nkappa = 1.0\np_min = 0.0',
+    "o-ts": 'kind = "oracle-prior-thompson"',
+    "o-kg": 'kind = "oracle-prior-knowledge-gradient"',
+    "clipped": 'kind = "oracle-prior-greedy"\np_min = 0.02\nclip = [0.1, 0.8]',
+}
+
+
+def _three_design(arm_means=(0.0, 0.3, -0.2)):
+    return reference_study(size=5, horizon=12, arms=("a", "b", "c"), arm_means=arm_means, policies=_THREE_POLICIES)
+
+
+THREE = _three_design().source_text
 
 HISTORY = (np.array([0, 0, 0, 1, 1, 2]), np.array([0, 1, 2, 1, 1, 0]), np.array([0.4, 1.1, -0.3, 0.2, 0.9, -0.5]))
 
@@ -249,8 +231,8 @@ def test_ties_split_evenly_above_the_floor():
     pol = make_policy(design.policy("o-ucb"), design, truth=object())
     pol.start(np.zeros((2, 0)))
     assert np.allclose(pol.probabilities(_batch([0, 1], 1), np.random.default_rng(0)), 1 / 3)
-    tie = THREE.replace("arm_means = [0.0, 0.3, -0.2]", "arm_means = [0.3, 0.3, -0.2]")
-    pol = make_policy(parse_design(tie).policy("o-greedy"), parse_design(tie), truth=object())
+    tie = _three_design(arm_means=(0.3, 0.3, -0.2))
+    pol = make_policy(tie.policy("o-greedy"), tie, truth=object())
     pol.start(np.zeros((1, 0)))
     p = pol.probabilities(_batch([0], 1), np.random.default_rng(0))[0]
     assert np.allclose(p, [0.02 + 0.47, 0.02 + 0.47, 0.02])
@@ -300,23 +282,13 @@ def test_bayes_optimal_grid_convergence():
     assert abs(a - b) < 1e-3
 
 
-TWO_ARM = """
-[study]
-arms = ["drill", "story"]
-horizon = 21
-[population]
-size = {size}
-arm_means = [0.0, 0.3]
-arm_sd = [0.5, 0.5]
-noise_sd = 1.0
-[policies.limit]
-kind = "bayes-optimal"
-[policies.kg-lookahead]
-kind = "oracle-prior-knowledge-gradient"
-lookahead = 40
-[policies.pooled-greedy]
-kind = "pooled-greedy"
-"""
+#: Scenario A2 (two arms, means (0, 0.3), heterogeneity 0.5, horizon 21) of
+#: poolbandit.simulation.scenarios.pooling_scenario with these policies.
+TWO_ARM_POLICIES = {
+    "limit": {"kind": "bayes-optimal"},
+    "kg-lookahead": {"kind": "oracle-prior-knowledge-gradient", "lookahead": 40},
+    "pooled-greedy": {"kind": "pooled-greedy"},
+}
 
 
 def test_bayes_optimal_value_agrees_with_simulation_of_the_policy():
@@ -326,7 +298,7 @@ def test_bayes_optimal_value_agrees_with_simulation_of_the_policy():
     regret within 4 standard errors (se from the participants' regrets, about 0.03)."""
     from poolbandit.simulation import participant_metrics
 
-    design = parse_design(TWO_ARM.format(size=4000))
+    design = pooling_scenario("A2", size=4000, policies=TWO_ARM_POLICIES)
     pop = draw_population(design, 5)
     res = run_policy(design, design.policy("limit"), pop, draw_streams(design, pop.size, 6), 7)
     r = participant_metrics(res)["regret"].to_numpy()
