@@ -114,8 +114,8 @@ DESIGN = [
     We adjust the design in two ways and save it as our own file:
 
     * add a **complete-pooling** Thompson policy (`everyone`: one set of format effects shared by all
-      learners), so that no pooling (`solo`), partial pooling (`pooled`) and complete pooling all
-      appear side by side;
+      learners), so that Thompson sampling with no pooling, partial pooling and complete pooling all
+      appear side by side (the cell prints which policy is which);
     * replace the shipped tuning sweep with one that matters for our analysis: the **probability
       floor** of per-learner Thompson sampling (`clip`). A higher floor explores more, costs reward,
       and gives the end-of-study analysis better data.
@@ -161,8 +161,9 @@ DESIGN = [
 
     Besides regret and reward, `compare` scores how well each policy's data classify learners at
     the end: the Brier score of the category probabilities (lower is better), the share labelled,
-    and the accuracy of the labels against the simulated truth. Policies with their own posterior
-    (the Thompson kinds) are scored with it; the others with each learner's own conjugate posterior
+    and the accuracy of the labels against the simulated truth. Policies with a posterior of their
+    own (Thompson sampling, the pooled kinds) are scored with it; the others with each learner's own
+    conjugate posterior
     (pass `scorer=ClassificationScorer(fit="fast")` to analyse every log with the hierarchical model,
     which is slower).
     """),
@@ -655,7 +656,7 @@ STUDY = [
     _md("""
     The exported `log.csv` and `design-from-study.toml` are all the next notebook needs: fit the
     hierarchical model, classify each learner and analyse the study (`03-report.ipynb`, which uses a
-    simulated log of the full-sized study so that it can also check the answers against the truth).
+    simulated log so that it can also check the answers against the truth).
     On the command line the whole day is:
 
     ```
@@ -682,13 +683,13 @@ REPORT = [
     4. check the model against the data (posterior predictive check);
     5. the end-of-study analysis of the formats, with the cautions that adaptively collected data need.
 
-    The log here is simulated with the pooled policy, so every answer can be checked against the
-    simulated truth. For a real study, read the export of notebook 2 instead:
+    The log here is simulated with pooled Thompson sampling, so every answer can be checked against
+    the simulated truth. For a real study, read the export of notebook 2 instead:
     `log = pb.read_log("log.csv", pb.load_design("design-from-study.toml"))`.
 
     **Run time.** 40 learners and 2 chains x 500 draws keep the notebook under a minute on 2 cores
-    (most of it PyMC compiling and sampling). For a report, use every learner and
-    4 chains x 1000 draws (`CHAINS`, `DRAWS` below).
+    (most of it PyMC compiling and sampling). For a report, use the design's 80 learners and
+    4 chains x 1000 draws (`LEARNERS`, `CHAINS`, `DRAWS` below).
     """),
     _code("""
     %matplotlib inline
@@ -705,8 +706,8 @@ REPORT = [
     import poolbandit as pb
     from poolbandit.analysis import ADAPTIVE_CAUTION, ESTIMAND_TEXT, OutcomePredictions, analyse
     from poolbandit.analysis.report import arm_value_figure
-    from poolbandit.classify import (agreement, calibrate, classify, population_effects, true_categories,
-                                     true_effects)
+    from poolbandit.classify import (agreement, calibrate, classify, describe_rule, population_effects,
+                                     true_categories, true_effects)
     from poolbandit.models import ModelData, arm_effects, diagnostics_table, fit
     from poolbandit.models.design_matrix import arm_rows
     from poolbandit.report import (confusion_heatmap, forest_plot, prevalence_plot, probability_bars,
@@ -792,8 +793,8 @@ REPORT = [
     ## Classify the learners
 
     For every posterior draw each learner's format effects (on a weekday, with an average yesterday)
-    fall into one category: a format beats both others by more than 0.2, or no format beats another
-    by more than 0.2. A learner's probability of a category is the share of draws in it; they get a
+    fall into the first of the design's categories whose rule they meet (the rules are printed
+    below), or into none. A learner's probability of a category is the share of draws in it; they get a
     label only when that probability reaches 0.8, otherwise "undetermined".
     """),
     _code("""
@@ -802,6 +803,8 @@ REPORT = [
     new_learners = population_effects(idata, design.arms, design.features, covariates=covariates,
                                       rng=g_population)
     classification = classify(effect, design.categories, population_effect=new_learners)
+    for rule in design.categories:
+        print(f"{rule.name}: {describe_rule(rule)}")
     print("\\n".join(classification.summary_lines()))
     classification.label_counts().to_frame("learners")
     """),
