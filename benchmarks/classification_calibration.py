@@ -42,97 +42,23 @@ from poolbandit.classify import Calibration, calibrate, classify, true_effects, 
 from poolbandit.models.effects import arm_effects
 from poolbandit.models.fit import fit
 from poolbandit.simulation import simulate
-from poolbandit.spec import parse_design
+from poolbandit.simulation.scenarios import latent_types_scenario
 
 warnings.filterwarnings("ignore", message=".*ArviZ is undergoing a major refactor.*")
 
-__all__ = ["SCENARIO", "scenario_design", "replicate", "main"]
-
-SCENARIO = """
-[study]
-title = "Calibration scenario: four latent types"
-arms = ["drill", "story", "roleplay"]
-horizon = 28
-outcome = "gaussian"
-reward = "log_minutes"
-seed = 20261202
-
-[population]
-size = 80
-arm_sd = [0.25, 0.25, 0.25]
-noise_sd = 0.8
-adherence = 0.85
-waves = 4
-wave_gap = 7
-
-[[population.types]]
-name = "drill-leaning"
-share = 0.25
-arm_means = [3.0, 2.2, 2.2]
-[[population.types]]
-name = "story-leaning"
-share = 0.25
-arm_means = [2.2, 3.0, 2.2]
-[[population.types]]
-name = "roleplay-leaning"
-share = 0.25
-arm_means = [2.2, 2.2, 3.0]
-[[population.types]]
-name = "no-clear-preference"
-share = 0.25
-arm_means = [2.4, 2.4, 2.4]
-
-[priors]
-beta_sd = 3.0
-tau_scale = 0.5
-sigma_scale = 1.0
-
-[policies.pooled]
-kind = "pooled-thompson"
-clip = [0.05, 0.9]
-explore_first = 3
-
-[policies.solo]
-kind = "thompson"
-model = "normal"
-prior_mean = 2.4
-prior_sd = 1.0
-noise_sd = 0.8
-
-[[categories]]
-name = "drill-leaning"
-best = "drill"
-margin = 0.2
-[[categories]]
-name = "story-leaning"
-best = "story"
-margin = 0.2
-[[categories]]
-name = "roleplay-leaning"
-best = "roleplay"
-margin = 0.2
-[[categories]]
-name = "no-clear-preference"
-within = 0.2
-"""
-
+__all__ = ["scenario_design", "replicate", "main"]
 
 def scenario_design(*, size: int | None = None, population: str = "types"):
-    """The benchmark design (optionally with another population size).
+    """The benchmark design (optionally with another population size): ``scenarios.latent_types_scenario``.
 
     ``population="types"``: the four latent types (the hierarchical model's
     normal population is then misspecified); ``"normal"``: no types, arm means
     (2.5, 2.4, 2.4) with normal heterogeneity 0.3 per arm, which the model
     describes exactly.
     """
-    text = SCENARIO if size is None else SCENARIO.replace("size = 80", f"size = {size}")
-    if population == "normal":
-        head, tail = text.split("[[population.types]]", 1)
-        text = head.replace("arm_sd = [0.25, 0.25, 0.25]", "arm_means = [2.5, 2.4, 2.4]\narm_sd = [0.3, 0.3, 0.3]") \
-            + "[priors]" + tail.split("[priors]", 1)[1]
-    elif population != "types":
-        raise ValueError(f"population must be 'types' or 'normal', got {population!r}")
-    return parse_design(text, source=f"<classification calibration scenario: {population}>")
+    return latent_types_scenario(size=80 if size is None else size, population=population,
+                                 title="Calibration scenario: four latent types", seed=20261202,
+                                 source=f"<classification calibration scenario: {population}>")
 
 
 def replicate(design, rng, *, engine: str = "full", chains: int = 4, draws: int = 1000, tune: int | None = None):

@@ -434,61 +434,11 @@ def test_chance_level_of_reliability_matches_simulation():
 # --------------------------------------------------------------------------
 # With the fast engine on a simulated study (pooled Thompson sampling collects the data)
 # --------------------------------------------------------------------------
-SCENARIO = """
-[study]
-arms = ["drill", "story", "roleplay"]
-horizon = 28
-reward = "log_minutes"
-[population]
-size = 80
-arm_sd = [0.25, 0.25, 0.25]
-noise_sd = 0.8
-adherence = 0.85
-waves = 4
-[[population.types]]
-name = "drill-leaning"
-share = 0.25
-arm_means = [3.0, 2.2, 2.2]
-[[population.types]]
-name = "story-leaning"
-share = 0.25
-arm_means = [2.2, 3.0, 2.2]
-[[population.types]]
-name = "roleplay-leaning"
-share = 0.25
-arm_means = [2.2, 2.2, 3.0]
-[[population.types]]
-name = "no-clear-preference"
-share = 0.25
-arm_means = [2.4, 2.4, 2.4]
-[priors]
-beta_sd = 3.0
-[policies.pooled]
-kind = "pooled-thompson"
-clip = [0.05, 0.9]
-explore_first = 3
-[policies.solo]
-kind = "thompson"
-model = "normal"
-prior_mean = 2.4
-prior_sd = 1.0
-noise_sd = 0.8
-[[categories]]
-name = "drill-leaning"
-best = "drill"
-margin = 0.2
-[[categories]]
-name = "story-leaning"
-best = "story"
-margin = 0.2
-[[categories]]
-name = "roleplay-leaning"
-best = "roleplay"
-margin = 0.2
-[[categories]]
-name = "no-clear-preference"
-within = 0.2
-"""
+# The calibration scenario of benchmarks/classification_calibration.py
+# (poolbandit.simulation.scenarios.latent_types_scenario): 80 participants in 4 waves, horizon 28,
+# four latent types in equal shares, heterogeneity 0.25, noise sd 0.8, adherence 0.85; policies
+# "pooled" (pooled Thompson sampling) and "solo"; the three "arm-leaning" categories (margin 0.2)
+# and "no-clear-preference" (within 0.2).
 
 
 def _fast_replicate(design, rng, *, silence: str | None = None):
@@ -514,9 +464,9 @@ def _fast_replicate(design, rng, *, silence: str | None = None):
 
 @pytest.fixture(scope="module")
 def fast_study():
-    from poolbandit.spec import parse_design
+    from poolbandit.simulation.scenarios import latent_types_scenario
 
-    design = parse_design(SCENARIO)
+    design = latent_types_scenario()
     return design, _fast_replicate(design, 20261203, silence="p080")
 
 
@@ -577,12 +527,9 @@ def test_pooled_posteriors_calibrated_and_better_than_unpooled_when_model_is_rig
     excess is 0.059 (overconfident labels, accuracy 0.77).
     """
     from poolbandit.classify import Calibration
-    from poolbandit.spec import parse_design
+    from poolbandit.simulation.scenarios import latent_types_scenario
 
-    head, tail = SCENARIO.split("[[population.types]]", 1)
-    text = head.replace("arm_sd = [0.25, 0.25, 0.25]", "arm_means = [2.5, 2.4, 2.4]\narm_sd = [0.3, 0.3, 0.3]") \
-        + "[priors]" + tail.split("[priors]", 1)[1]
-    design = parse_design(text)
+    design = latent_types_scenario(population="normal")
     reps = [_fast_replicate(design, seed) for seed in (11, 12, 13)]
     pooled = Calibration.combine([calibrate(r["pooled"], r["truth"]) for r in reps])
     unpooled = Calibration.combine([calibrate(r["unpooled"], r["truth"]) for r in reps])
@@ -601,12 +548,11 @@ def cli_files(tmp_path_factory):
     """A small simulated log (12 participants, unpooled Thompson sampling) with its design and an intake file."""
     from poolbandit.log import write_log
     from poolbandit.simulation import simulate
-    from poolbandit.spec import parse_design
+    from poolbandit.simulation.scenarios import latent_types_scenario
 
     root = tmp_path_factory.mktemp("cli")
-    text = SCENARIO.replace("size = 80", "size = 12")
-    design = parse_design(text)
-    (root / "design.toml").write_text(text, encoding="utf-8")
+    design = latent_types_scenario(size=12)
+    (root / "design.toml").write_text(design.source_text, encoding="utf-8")
     result = simulate(design, "solo", 5)
     write_log(result.log, root / "log.csv")
     names = [c.name for c in design.categories]

@@ -8,9 +8,12 @@ import subprocess
 import sys
 from pathlib import Path
 
+from poolbandit.simulation.scenarios import ARMS, preference_categories
+
 __all__ = ["DESIGN_GAUSSIAN", "DESIGN_BERNOULLI", "write", "cli", "poolbandit", "cli_in_process", "db_state"]
 
-#: A small gaussian design in the demo scenario's shape (three practice formats).
+#: A small gaussian design in the demo scenario's shape (three practice formats), with the
+#: calibration scenario's categories (scenarios.preference_categories, "arm-leaning" by 0.2).
 DESIGN_GAUSSIAN = """
 [study]
 title = "Practice formats, live-study test"
@@ -65,25 +68,7 @@ burn_in = 40
 [policies.oracle]
 kind = "oracle"
 
-[[categories]]
-name = "drill-leaning"
-best = "drill"
-margin = 0.2
-
-[[categories]]
-name = "story-leaning"
-best = "story"
-margin = 0.2
-
-[[categories]]
-name = "roleplay-leaning"
-best = "roleplay"
-margin = 0.2
-
-[[categories]]
-name = "no-clear-preference"
-within = 0.2
-"""
+""" + preference_categories(ARMS, margin=0.2, name="{arm}-leaning") + "\n"
 
 #: A bernoulli design without context: "met the daily goal".
 DESIGN_BERNOULLI = """
