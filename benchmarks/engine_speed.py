@@ -30,33 +30,16 @@ import numpy as np
 
 from poolbandit.models import GibbsSampler, ModelData, sample_fast
 from poolbandit.simulation import simulate
-from poolbandit.spec import parse_design
+from poolbandit.simulation.scenarios import reference_study
 
 warnings.filterwarnings("ignore", message=".*ArviZ is undergoing a major refactor.*")
 
 __all__ = ["study_design", "mixing_table", "large_scale", "demo_speed", "nuts_section", "main"]
 
-_TOML = """
-[study]
-arms = {arms}
-horizon = 21
-outcome = "{outcome}"
-[population]
-size = {size}
-arm_means = {means}
-arm_sd = {sds}
-noise_sd = 1.0
-[policies.control]
-kind = "random"
-"""
-
-
 def study_design(outcome: str = "gaussian", *, size: int = 60, n_arms: int = 3):
-    """The benchmark study: arm means (0, 0.3, -0.2[, 0.1]), heterogeneity 0.5, noise 1."""
-    arms = ["drill", "story", "roleplay", "podcast"][:n_arms]
-    means = [0.0, 0.3, -0.2, 0.1][:n_arms]
-    text = _TOML.format(arms=arms, outcome=outcome, size=size, means=means, sds=[0.5] * n_arms)
-    return parse_design(text.replace("'", '"'))
+    """The benchmark study, ``scenarios.reference_study``: arm means (0, 0.3, -0.2[, 0.1]), heterogeneity 0.5, noise 1."""
+    return reference_study(outcome, size=size, arms=("drill", "story", "roleplay", "podcast")[:n_arms],
+                           arm_means=(0.0, 0.3, -0.2, 0.1)[:n_arms])
 
 
 def mixing_table(outcome: str = "gaussian", *, draws: int = 1000, tune: int = 200, seed: int = 20260101):

@@ -18,26 +18,14 @@ from poolbandit.models.data import ModelData
 from poolbandit.models.gibbs import sample_fast
 from poolbandit.models.pymc_engine import sample_full
 from poolbandit.simulation import simulate
-from poolbandit.spec import PriorSpec, parse_design
+from poolbandit.simulation.scenarios import reference_study
+from poolbandit.spec import PriorSpec
 
-SCHOOLS_Y = np.array([28.0, 8, -3, 7, -1, 1, 18, 12])
-SCHOOLS_SD = np.array([15.0, 10, 16, 11, 9, 11, 10, 18])
+from _reference import SCHOOLS_SD, SCHOOLS_Y
 
-#: The simulated study of checks.md 2: 60 participants, 3 arms, 21 decisions, arm means
-#: (0, 0.3, -0.2), heterogeneity 0.5, noise 1, random assignment; default priors.
-STUDY_TOML = """
-[study]
-arms = ["drill", "story", "roleplay"]
-horizon = 21
-outcome = "{outcome}"
-[population]
-size = 60
-arm_means = [0.0, 0.3, -0.2]
-arm_sd = [0.5, 0.5, 0.5]
-noise_sd = 1.0
-[policies.control]
-kind = "random"
-"""
+#: The simulated study of checks.md 2 is scenarios.reference_study: 60 participants, 3 arms,
+#: 21 decisions, arm means (0, 0.3, -0.2), heterogeneity 0.5, noise 1, random assignment;
+#: default priors.
 NUTS = {"chains": 2, "draws": 1000, "tune": 500, "sample_kwargs": {"cores": 2}}
 FAST = {"chains": 4, "draws": 1000, "tune": 200}
 THETA_SAMPLE = 5  # participants whose three coefficients are compared
@@ -101,7 +89,7 @@ def test_eight_schools_fast_engine_agrees_with_nuts():
 @pytest.fixture(scope="module", params=["gaussian", "bernoulli"])
 def study_fits(request):
     """One simulated 60 x 21 x 3 study per outcome, fitted by both engines (seeded)."""
-    design = parse_design(STUDY_TOML.format(outcome=request.param))
+    design = reference_study(request.param)
     log = simulate(design, "control", rng=20261203).log
     data = ModelData.from_log(log, design)
     fast = sample_fast(data, design.priors, rng=1, **FAST).posterior

@@ -13,30 +13,16 @@ from scipy import stats
 from poolbandit.models import GibbsSampler, ModelData, sample_fast
 from poolbandit.models._polyagamma import draw_pg, pg_mean, pg_var
 from poolbandit.simulation import simulate
-from poolbandit.spec import PriorSpec, parse_design
+from poolbandit.simulation.scenarios import reference_study
+from poolbandit.spec import PriorSpec
 
-SCHOOLS_Y = np.array([28.0, 8, -3, 7, -1, 1, 18, 12])
-SCHOOLS_SD = np.array([15.0, 10, 16, 11, 9, 11, 10, 18])
-
-STUDY_TOML = """
-[study]
-arms = ["drill", "story", "roleplay"]
-horizon = 21
-outcome = "gaussian"
-[population]
-size = 60
-arm_means = [0.0, 0.3, -0.2]
-arm_sd = [0.5, 0.5, 0.5]
-noise_sd = 1.0
-[policies.control]
-kind = "random"
-"""
+from _reference import SCHOOLS_SD, SCHOOLS_Y
 
 
 @pytest.fixture(scope="module")
 def study():
     """A simulated 60 x 21 x 3 study under a random policy (seeded)."""
-    design = parse_design(STUDY_TOML)
+    design = reference_study()
     return design, simulate(design, "control", rng=20260101).log
 
 
