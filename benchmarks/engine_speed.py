@@ -37,7 +37,7 @@ warnings.filterwarnings("ignore", message=".*ArviZ is undergoing a major refacto
 __all__ = ["study_design", "mixing_table", "large_scale", "demo_speed", "nuts_section", "main"]
 
 def study_design(outcome: str = "gaussian", *, size: int = 60, n_arms: int = 3):
-    """The benchmark study, ``scenarios.reference_study``: arm means (0, 0.3, -0.2[, 0.1]), heterogeneity 0.5, noise 1."""
+    """The benchmark study (``scenarios.reference_study``): arm means (0, 0.3, -0.2[, 0.1]), sd 0.5, noise 1."""
     return reference_study(outcome, size=size, arms=("drill", "story", "roleplay", "podcast")[:n_arms],
                            arm_means=(0.0, 0.3, -0.2, 0.1)[:n_arms])
 

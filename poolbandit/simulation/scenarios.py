@@ -122,9 +122,9 @@ def preference_categories(arms: Sequence[str], *, margin: float, name: str = "{a
     str
         ``[[categories]]`` tables to append to a design (``categories=`` of the builders).
     """
-    rules = [f'[[categories]]\nname = {_value(name.format(arm=a))}\nbest = {_value(a)}\nmargin = {_value(float(margin))}'
-             for a in arms]
-    rules.append(f'[[categories]]\nname = "no-clear-preference"\nwithin = {_value(float(margin))}')
+    m = _value(float(margin))
+    rules = [f'[[categories]]\nname = {_value(name.format(arm=a))}\nbest = {_value(a)}\nmargin = {m}' for a in arms]
+    rules.append(f'[[categories]]\nname = "no-clear-preference"\nwithin = {m}')
     return "\n".join(rules)
 
 
