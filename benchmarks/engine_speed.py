@@ -21,6 +21,9 @@ Run: ``.venv/bin/python benchmarks/engine_speed.py [--quick]``.
 from __future__ import annotations
 
 import argparse
+import os
+import sys
+import tempfile
 import time
 import tracemalloc
 import warnings
@@ -94,7 +97,7 @@ def demo_speed(*, sweeps: int = 40, seed: int = 5) -> list[tuple[str, float]]:
     return rows
 
 
-def nuts_section(fast_rows=None, *, quick: bool = False, seed: int = 20260101) -> list[tuple]:
+def nuts_section(fast_rows=None, *, quick: bool = False, seed: int = 20260101, label: str = "") -> list[tuple]:
     """Effective draws per second of the fast engine and of PyMC NUTS, side by side.
 
     On the whole 60 x 21 x 3 study (gaussian and bernoulli), both engines run
@@ -137,7 +140,7 @@ def nuts_section(fast_rows=None, *, quick: bool = False, seed: int = 20260101) -
         print(f"\n[full engine] {outcome}: fast {4 * draws} draws in {t_fast:.1f} s, worst-tau ESS {ess_fast:.0f}; "
               f"NUTS {4 * draws} draws (+{4 * tune} tuning) in {t_nuts:.1f} s of which sampling {t_sampling:.1f} s, "
               f"worst-tau ESS {ess_nuts:.0f}, {int(nuts.sample_stats['diverging'].sum())} divergences")
-    print(f"\nworst-tau effective draws per second, 60 x 21 x 3 study, 4 chains in one process")
+    print(f"\nworst-tau effective draws per second, 60 x 21 x 3 study, 4 chains in one process{label}")
     print(f"{'outcome':>10} {'fast_ess_per_s':>15} {'nuts_ess_per_s':>15} {'nuts_sampling_only':>19} "
           f"{'ratio_fast_over_nuts':>21}")
     for outcome, f, n, n_only, ratio in rows:
@@ -149,6 +152,8 @@ def nuts_section(fast_rows=None, *, quick: bool = False, seed: int = 20260101) -
 def main(argv=None) -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="fewer draws (a smoke run)")
+    parser.add_argument("--warm-only", action="store_true",
+                        help="skip the NUTS run with an empty PyTensor compile cache")
     args = parser.parse_args(argv)
     draws = 200 if args.quick else 1000
     rows = {}
@@ -164,7 +169,14 @@ def main(argv=None) -> None:
     print("\nfast engine on the demo design (80 participants, three 3 x 3 coefficient blocks), one chain:")
     for cov, rate in demo_speed(sweeps=20 if args.quick else 40):
         print(f"  {cov:>8} covariance: {rate:.1f} sweeps per second")
-    nuts_section(rows["gaussian"], quick=args.quick)
+    if not args.warm_only:
+        # A first fit on a new machine compiles PyTensor's C code from scratch: measure it with an
+        # empty compile cache (set before PyTensor is first imported), then again with it warm.
+        if "pytensor" in sys.modules:
+            raise SystemExit("pytensor was imported before the cold-cache measurement")
+        os.environ["PYTENSOR_FLAGS"] = f"compiledir={tempfile.mkdtemp(prefix='pytensor-cold-')}"
+        nuts_section(rows["gaussian"], quick=args.quick, label=" (NUTS: empty compile cache, a first fit)")
+    nuts_section(rows["gaussian"], quick=args.quick, label=" (NUTS: warm compile cache)")
 
 
 if __name__ == "__main__":
