@@ -41,7 +41,7 @@ from .errors import LogError, format_value
 if TYPE_CHECKING:  # pragma: no cover
     from .spec import DesignSpec
 
-__all__ = ["log_columns", "validate_log", "read_log", "write_log", "prob_columns"]
+__all__ = ["log_columns", "validate_log", "read_cells", "read_log", "write_log", "prob_columns"]
 
 _CORE = ["participant", "decision", "arm", "propensity"]
 _SIM = ["expected_reward", "best_expected_reward"]
@@ -188,18 +188,22 @@ def _cell(df: pd.DataFrame, j: int, col: str) -> object:
     return v if v is not pd.NA else ""
 
 
-def read_log(path: str | Path, design: DesignSpec) -> pd.DataFrame:
-    """Read a StudyLog CSV and validate it (see :func:`validate_log`)."""
+def read_cells(path: str | Path) -> pd.DataFrame:
+    """Read a CSV as text cells (empty cells missing), with LogError naming the file on failure."""
     path = Path(path)
     try:
-        df = pd.read_csv(path, dtype=str, keep_default_na=False, na_values=[""])
+        return pd.read_csv(path, dtype=str, keep_default_na=False, na_values=[""])
     except FileNotFoundError:
         raise LogError(["file not found"], source=str(path)) from None
     except pd.errors.EmptyDataError:
         raise LogError(["the file is empty (no header)"], source=str(path)) from None
     except (pd.errors.ParserError, UnicodeDecodeError) as err:
         raise LogError([f"cannot parse CSV ({err})"], source=str(path)) from None
-    return validate_log(df, design, source=str(path))
+
+
+def read_log(path: str | Path, design: DesignSpec) -> pd.DataFrame:
+    """Read a StudyLog CSV and validate it (see :func:`validate_log`)."""
+    return validate_log(read_cells(path), design, source=str(path))
 
 
 def write_log(df: pd.DataFrame, path: str | Path | io.TextIOBase) -> None:

@@ -26,8 +26,8 @@ import numpy as np
 import pandas as pd
 
 from .._random import RngLike, spawn
-from ..errors import LogError, OverlapWarning
-from ..log import validate_log
+from ..errors import OverlapWarning
+from ..log import read_cells, validate_log
 from ._prepare import SeMethod, prepare
 from .arm_values import arm_values, outcome_predictions
 from .conditions import compare_conditions
@@ -102,14 +102,7 @@ def read_analysis_log(path: str | Path, design) -> pd.DataFrame:
         Naming file, row, column and value (see :func:`poolbandit.log.validate_log`).
     """
     path = Path(path)
-    try:
-        df = pd.read_csv(path, dtype=str, keep_default_na=False, na_values=[""])
-    except FileNotFoundError:
-        raise LogError(["file not found"], source=str(path)) from None
-    except pd.errors.EmptyDataError:
-        raise LogError(["the file is empty (no header)"], source=str(path)) from None
-    except (pd.errors.ParserError, UnicodeDecodeError) as err:
-        raise LogError([f"cannot parse CSV ({err})"], source=str(path)) from None
+    df = read_cells(path)
     absent = "propensity" not in df.columns or (len(df) > 0 and df["propensity"].isna().all())
     if not absent:
         return validate_log(df, design, source=str(path))
