@@ -29,7 +29,6 @@ import tracemalloc
 import warnings
 
 import arviz as az
-import numpy as np
 
 from poolbandit.models import GibbsSampler, ModelData, sample_fast
 from poolbandit.simulation import simulate

@@ -1,9 +1,6 @@
 """The StudyLog: exact CSV round trip and validation messages with row, column and value."""
 
-import subprocess
-import sys
 
-import numpy as np
 import pandas as pd
 import pytest
 

@@ -8,7 +8,6 @@ import pytest
 from scipy import stats
 
 from poolbandit import parse_design, simulate, write_log
-from poolbandit.policies import Batch
 from poolbandit.policies.base import Policy
 from poolbandit.simulation import draw_population, participant_metrics, regret_curve, summarise
 

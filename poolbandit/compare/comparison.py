@@ -25,7 +25,6 @@ import pandas as pd
 
 from .._random import RngLike, seed_sequence
 from ..errors import InputError, format_value
-from ..policies._catalogue import KINDS
 from ..policies.registry import CLASSES
 from ..spec import DesignSpec, PolicySpec
 from .engine import Executor, ReplicateJob, Variant, child_seed, make_executor, portable, run_replicate

@@ -391,7 +391,7 @@ def assign(db: str | Path, *, step: int | None = None, context: str | Path | Non
         design, conn = study.design, study.conn
         parsed = _read_context(context, design) if context is not None and design.features else None
         if context is not None and not design.features:
-            raise InputError(f"--context: the design has no context features; assign without --context")
+            raise InputError("--context: the design has no context features; assign without --context")
         with write_transaction(conn):
             nxt = _next_step(conn)
             s = nxt if step is None else int(step)

@@ -19,7 +19,7 @@ from poolbandit._random import spawn
 from poolbandit.models.design_matrix import design_rows
 from poolbandit.policies import Batch, make_policy
 from poolbandit.policies._gaussian import prob_best_correlated, prob_best_normal
-from poolbandit.policies._probability import draw_arms, prob_best
+from poolbandit.policies._probability import prob_best
 from poolbandit.simulation import draw_population, draw_streams, run_policy
 from poolbandit.simulation.scenarios import paired_ratio, paired_replicates, pooling_scenario
 

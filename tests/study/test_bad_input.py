@@ -101,7 +101,7 @@ def test_record_rejects_a_wrong_arm(prepared, tmp_path, capsys):
     path = write(tmp_path / "o.csv", f"participant,decision,met_goal,arm\np02,2,1,\np01,2,1,{other}\n")
     _rejected(capsys, db, "record", "--db", db, path,
               expect=['row 1, column arm: expected one of drill, story, roleplay, got ""',
-                      f'row 2, column arm: decision 2 of participant "p01" was assigned',
+                      'row 2, column arm: decision 2 of participant "p01" was assigned',
                       f'got "{other}"'])
 
 
