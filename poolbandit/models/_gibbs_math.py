@@ -340,127 +340,150 @@ def slice_step_vec(x0: np.ndarray, logf: Callable[[np.ndarray], np.ndarray], rng
                    width=1.0, max_steps: int = 32, ahead: int = 3, spec: int = 4) -> tuple[np.ndarray, np.ndarray]:
     """Independent slice-sampling updates of ``B`` scalars, run in lockstep.
 
-    Each scalar ``x0[b]`` gets exactly the update of :func:`slice_step`
-    (stepping out with at most ``max_steps`` widths, then shrinkage; Neal
-    [1]_) on its own log density, so the scalars must be conditionally
-    independent. ``logf`` maps points shaped ``(m, B)`` to log densities
-    ``(m, B)``: column ``b`` is evaluated under the density of scalar ``b``.
-    Several points go into each call to cut call overhead: the start, both
-    ends of the first interval and ``ahead`` further stepping-out positions on
-    each side are evaluated together, and shrinkage evaluates ``spec``
-    candidates per call (each one assuming the ones before are rejected;
-    their uniforms are drawn either way). Evaluating a point early never changes which point is
-    accepted, so the chain is the same as with one evaluation per call.
+    Each scalar ``x0[b]`` gets the update of :func:`slice_step` (stepping out
+    with at most ``max_steps`` widths, then shrinkage; Neal [1]_) on its own
+    log density, so the scalars must be conditionally independent. ``logf``
+    maps points shaped ``(m, B)`` to log densities ``(m, B)``: column ``b`` is
+    evaluated under the density of scalar ``b``. Several points go into each
+    call of ``logf`` to cut call overhead: the first call evaluates the start,
+    the two ends of the first interval, ``ahead`` further stepping-out
+    positions on each side, and the first ``spec`` shrinkage candidates as
+    they would be if the stepping out stops at once (used only when it
+    does); later calls evaluate ``spec`` shrinkage candidates each (every one
+    assuming the ones before it are rejected). Evaluating a point early never
+    changes which point is accepted, and a speculative candidate that is not
+    used has not influenced anything (its uniforms then serve the first real
+    shrinkage round), so each scalar follows exactly the slice sampler's
+    transition. Columns that need no more evaluations are padded with their
+    start point. The bookkeeping runs on Python floats: for the few scalars of
+    a sweep that is cheaper than array operations.
 
     ``rng`` is a generator, or a list of generators (independent chains):
     then the scalars are split into that many equal consecutive parts and
-    each part draws from its own generator. ``width`` is a number or one per
-    scalar. Returns the new values and, per scalar, the number of evaluations
-    :func:`slice_step` would have made.
+    each part draws from its own generator (``3 + spec`` uniforms per scalar
+    up front, ``spec`` more per scalar of a part whenever one of its scalars
+    needs another shrinkage round), so a part's draws never depend on the
+    other parts. ``width`` is a number or one per scalar. Returns the new
+    values and, per scalar, the number of evaluations :func:`slice_step`
+    would have made.
     """
     rngs = rng if isinstance(rng, (list, tuple)) else [rng]
-    xs = np.asarray(x0, dtype=float).tolist()
-    B = len(xs)
-    per = B // len(rngs)
+    xa = np.asarray(x0, dtype=float).reshape(-1)
+    B = xa.shape[0]
+    nr = len(rngs)
+    per = B // nr
+    rows = 3 + spec
+    U = rngs[0].random((B, rows)) if nr == 1 else np.concatenate([r.random((per, rows)) for r in rngs])
+    xs, Ul = xa.tolist(), U.tolist()
     ws = np.broadcast_to(np.asarray(width, dtype=float), (B,)).tolist()
-    rows = 3 + 2 * spec  # uniforms drawn at once per scalar: level, interval, budget, two shrinkage rounds
-    if len(rngs) == 1:
-        U = rngs[0].random((B, rows)).tolist()
-    else:
-        U = np.concatenate([r.random((per, rows)) for r in rngs]).tolist()
-    gens = [_slice_one(xs[b], ws[b], U[b], rngs[b // per], max_steps, ahead, spec) for b in range(B)]
-    reqs = [next(g) for g in gens]
-    out, n_eval = list(xs), [0] * B
-    active = list(range(B))
-    while active:
-        m = max(len(reqs[b]) for b in active)
-        cols = []
-        for b in range(B):
-            r = reqs[b] if reqs[b] is not None else []
-            cols.append(r + [xs[b]] * (m - len(r)))
-        F = logf(np.array(cols).T).T.tolist()
-        still = []
-        for b in active:
-            try:
-                reqs[b] = gens[b].send(F[b][:len(reqs[b])])
-                still.append(b)
-            except StopIteration as stop:
-                out[b], n_eval[b] = stop.value
-                reqs[b] = None
-        active = still
-    return np.array(out), np.array(n_eval)
-
-
-def _slice_one(x0: float, w: float, u: list, rng, max_steps: int, ahead: int, spec: int):
-    """One scalar's slice update as a generator: yields lists of points, receives their log densities.
-
-    Same steps as :func:`slice_step` (stepping out, then shrinkage); points
-    that may be needed soon are requested together (see :func:`slice_step_vec`).
-    Returns ``(new value, evaluations slice_step would have made)``.
-    """
-    pos = 0
-
-    def uniform() -> float:
-        nonlocal pos, u
-        if pos == len(u):
-            u, pos = rng.random(2 * spec).tolist(), 0
-        pos += 1
-        return u[pos - 1]
-
-    e = -math.log1p(-uniform())  # standard exponential (inverse cdf)
-    lo = x0 - w * uniform()
-    hi = lo + w
-    jl = int(max_steps * uniform())  # stepping-out budgets (floor of a non-negative value)
-    jr = max_steps - 1 - jl
     K = ahead + 1
-    F = yield [x0] + [lo - s * w for s in range(K)] + [hi + s * w for s in range(K)]
-    f0 = F[0]
-    if not math.isfinite(f0):
-        raise FloatingPointError(f"slice sampler started at a point of zero density (x={x0!r})")
-    level = f0 - e
-    n = 1
-    fl, fr = F[1:K + 1], F[K + 1:]
-    k = 0
-    while jl > 0:
-        if k == len(fl):
-            fl, k = (yield [lo - s * w for s in range(K)]), 0
-        n += 1
-        if not fl[k] > level:
-            break
-        lo -= w
-        jl -= 1
-        k += 1
-    k = 0
-    while jr > 0:
-        if k == len(fr):
-            fr, k = (yield [hi + s * w for s in range(K)]), 0
-        n += 1
-        if not fr[k] > level:
-            break
-        hi += w
-        jr -= 1
-        k += 1
-    while True:
-        cands = []
-        a, b = lo, hi
-        for _ in range(spec):  # each candidate assumes the ones before it are rejected
-            c = a + (b - a) * uniform()
-            cands.append(c)
-            if c < x0:
-                a = c
-            else:
-                b = c
-        G = yield cands
-        for c, g in zip(cands, G):
-            n += 1
-            if g > level:
-                return c, n
-            if c < x0:
+    los, his, grid = [0.0] * B, [0.0] * B, []
+    for b in range(B):
+        x, w, u = xs[b], ws[b], Ul[b]
+        lo = x - w * u[1]
+        hi = lo + w
+        los[b], his[b] = lo, hi
+        row = [x] + [lo - s * w for s in range(K)] + [hi + s * w for s in range(K)]
+        for j in range(3, rows):  # speculative shrinkage candidates of the first interval
+            c = lo + (hi - lo) * u[j]
+            row.append(c)
+            if c < x:
                 lo = c
             else:
                 hi = c
-        if hi - lo <= 1e-12 * (1.0 + abs(x0)):  # pragma: no cover - shrinkage collapsed numerically
-            return x0, n
+        grid.append(row)
+    F = logf(np.array(grid).T).T.tolist()
+    levels, n = [0.0] * B, [1] * B
+    bl, br = [0] * B, [0] * B  # stepping-out budgets left on each side
+    for b in range(B):
+        f0, u = F[b][0], Ul[b]
+        if not math.isfinite(f0):
+            raise FloatingPointError(f"slice sampler started at a point of zero density (x={xs[b]!r})")
+        levels[b] = f0 + math.log1p(-u[0])  # f0 minus a standard exponential (inverse cdf)
+        jl = int(max_steps * u[2])  # floor of a non-negative value
+        bl[b], br[b] = jl, max_steps - 1 - jl
+    Fl = [Fb[1:K + 1] for Fb in F]
+    Fr = [Fb[K + 1:2 * K + 1] for Fb in F]
+    moved = [False] * B
+    while True:
+        more = False
+        for b in range(B):
+            level, w = levels[b], ws[b]
+            for side, budget, vals in ((0, bl, Fl), (1, br, Fr)):
+                j = budget[b]
+                if j <= 0:
+                    continue
+                for f in vals[b]:
+                    n[b] += 1
+                    if not f > level:
+                        j = 0
+                        break
+                    if side:
+                        his[b] += w
+                    else:
+                        los[b] -= w
+                    moved[b] = True
+                    j -= 1
+                    if j == 0:
+                        break
+                budget[b] = j
+                more = more or j > 0
+        if not more:
+            break
+        # rare: some scalar's stepping out ran past the evaluated points
+        pts = np.array([[los[b] - s * ws[b] if bl[b] > 0 else xs[b] for s in range(K)]
+                        + [his[b] + s * ws[b] if br[b] > 0 else xs[b] for s in range(K)] for b in range(B)])
+        G = logf(pts.T).T.tolist()
+        Fl = [g[:K] for g in G]
+        Fr = [g[K:] for g in G]
+    out = list(xs)
+    us = [u[3:] for u in Ul]
+    cands = [None if moved[b] else grid[b][2 * K + 1:] for b in range(B)]
+    vals_c = [None if moved[b] else F[b][2 * K + 1:] for b in range(B)]
+    active = list(range(B))
+    while True:
+        need = [b for b in active if cands[b] is None]
+        if need:
+            pad = [[x] * spec for x in xs]
+            for b in need:
+                x, lo, hi, u, row = xs[b], los[b], his[b], us[b], pad[b]
+                for j in range(spec):  # candidate j assumes candidates 0..j-1 are rejected
+                    c = lo + (hi - lo) * u[j]
+                    row[j] = c
+                    if c < x:
+                        lo = c
+                    else:
+                        hi = c
+                cands[b] = row
+            G = logf(np.array(pad).T).T.tolist()
+            for b in need:
+                vals_c[b] = G[b]
+        still = []
+        for b in active:
+            level, row, g, x = levels[b], cands[b], vals_c[b], xs[b]
+            for j in range(spec):
+                n[b] += 1
+                if g[j] > level:
+                    out[b] = row[j]
+                    break
+                if row[j] < x:
+                    los[b] = row[j]
+                else:
+                    his[b] = row[j]
+            else:
+                if his[b] - los[b] > 1e-12 * (1.0 + abs(x)):
+                    still.append(b)
+                    cands[b] = None
+                # pragma: no cover - else shrinkage collapsed numerically: keep x0
+        if not still:
+            return np.array(out), np.array(n, dtype=np.int64)
+        active = still
+        for i, r in enumerate(rngs):
+            lo_b, hi_b = i * per, (i + 1) * per
+            if any(lo_b <= b < hi_b for b in still):
+                fresh = r.random((per, spec)).tolist()
+                for b in range(lo_b, hi_b):
+                    us[b] = fresh[b - lo_b]
 
 
 # --------------------------------------------------------------------------

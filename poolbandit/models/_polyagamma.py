@@ -25,11 +25,14 @@ def draw_pg(h: np.ndarray | float, c: np.ndarray, rng: np.random.Generator) -> n
     c = np.asarray(c, dtype=float)
     if c.size == 0:
         return np.zeros(c.shape)
-    if np.ndim(h) == 0 and float(h) == 1.0:  # Devroye's exact sampler for PG(1, c): the fastest here
-        out = random_polyagamma(1.0, c, method="devroye", random_state=rng)
+    hh = np.asarray(h, dtype=float)
+    if np.all(hh == np.round(hh)):
+        # Devroye's exact sampler; an integer h draws the sum of h PG(1, c) variables, so the cost is that of
+        # the per-observation draws it replaces, less the per-variate overhead
+        out = random_polyagamma(hh, c, method="devroye", random_state=rng)
     else:
-        out = random_polyagamma(h, c, random_state=rng)
-    return np.asarray(out, dtype=float).reshape(np.broadcast(np.asarray(h), c).shape)
+        out = random_polyagamma(hh, c, random_state=rng)
+    return np.asarray(out, dtype=float).reshape(np.broadcast(hh, c).shape)
 
 
 def pg_mean(h: np.ndarray | float, c: np.ndarray | float) -> np.ndarray:

@@ -112,6 +112,10 @@ _INITS = ("prior", "dispersed")
 #: :func:`sample_fast` runs its chains in lockstep when ``chains * N * P^2`` is at most this.
 _LOCKSTEP_SIZE = 4_000_000
 
+#: Use the closed forms of scalar coefficient blocks (diagonal covariance) when they apply; tests turn it
+#: off to check the scalar path against the general one on the same random stream.
+_SCALAR_PATH = True
+
 
 @dataclass
 class GibbsState:
@@ -262,8 +266,16 @@ class GibbsSampler:
 
     @property
     def _omega(self) -> np.ndarray:
-        """The current Polya-Gamma draws (n,) (chains, n) when there are several)."""
-        return self._omegas[0] if self._C == 1 else self._omegas
+        """Per-observation Polya-Gamma weights (n,) ((chains, n) when there are several).
+
+        The sampler draws one ``PG(n_u, x_u'theta_i)`` per cell ``u`` (the
+        ``n_u`` observations of a participant with one design row), the law of
+        the sum of their ``PG(1, .)`` variables; each observation gets an equal
+        share, so ``X_i' Omega_i X_i`` and every conditional are those of the
+        per-observation augmentation.
+        """
+        w = self._omegas[:, self._cell_of] / self._cell_h[self._cell_of]
+        return w[0] if self._C == 1 else w
 
     # ------------------------------------------------------------------
     # Data and sufficient statistics
@@ -303,10 +315,20 @@ class GibbsSampler:
             self._S, self._s, self._yy, self._n_obs = S, s, yy, n
             self._pattern = pattern.copy()
         else:
-            self._G = sp.csr_matrix((np.ones(n), (g, np.arange(n))), shape=(N, n))
-            self._kappa = y - 0.5
-            self._s = np.asarray(self._G @ (X * self._kappa[:, None])).reshape(N, P)
-            outer = (X[:, :, None] * X[:, None, :]).reshape(n, P * P)
+            kappa = y - 0.5
+            Gobs = sp.csr_matrix((np.ones(n), (g, np.arange(n))), shape=(N, n))
+            self._s = np.asarray(Gobs @ (X * kappa[:, None])).reshape(N, P)
+            # observations of one participant with the same design row share x'theta_i, and only the sum of
+            # their Polya-Gamma variables enters the sampler: one PG(n_u, x_u'theta_i) per such cell u
+            cells, cell_of, counts = np.unique(np.concatenate([g[:, None].astype(float), X], axis=1), axis=0,
+                                               return_inverse=True, return_counts=True)
+            self._cell_of = cell_of.reshape(-1)
+            self._cell_h = counts.astype(float)
+            self._cell_g = cells[:, 0].astype(np.int64)
+            self._cell_X = np.ascontiguousarray(cells[:, 1:])
+            Uc = len(counts)
+            self._G = sp.csr_matrix((np.ones(Uc), (self._cell_g, np.arange(Uc))), shape=(N, Uc))
+            outer = (self._cell_X[:, :, None] * self._cell_X[:, None, :]).reshape(Uc, P * P)
             pattern = (outer != 0).any(axis=0).reshape(P, P) if n else np.zeros((P, P), bool)
         if self._full:
             r = np.flatnonzero(self._random)
@@ -347,6 +369,48 @@ class GibbsSampler:
         else:
             self._gouter = [outer[:, grp.flat] for grp in self._groups]
             self._A_bern = None
+        # scalar blocks and a diagonal covariance: the closed forms of :meth:`_sweep_scalar`
+        self._scalar = (_SCALAR_PATH and not self._full and len(self._groups) == 1 and self._groups[0].k == 1
+                        and np.array_equal(self._groups[0].idx[:, 0], np.arange(P)))
+        if self._scalar:
+            self._prepare_scalar()
+
+    def _prepare_scalar(self) -> None:
+        """Statistics of the scalar-block path, per coefficient ``p`` over "units" ``u``.
+
+        Gaussian: the participants with equal ``a_ip = (X_i'X_i)_pp`` (weighted)
+        form one unit, with its value ``vals``, count ``cnt``, sums ``SB`` of
+        ``s_ip = (X_i'y_i)_p`` and ``SB2`` of ``s_ip^2`` (padded to a common
+        number of units with zero counts); ``code`` maps (p, i) to ``p U + u``.
+        Bernoulli: the ``a_ip`` change with the Polya-Gamma draws, so every
+        participant is its own unit (computed per sweep).
+        """
+        N, P = self._s.shape
+        rnd = np.flatnonzero(self._random)
+        self._rnd = rnd
+        self._all_random = len(rnd) == P
+        if self._data.outcome != "gaussian":
+            return
+        a = np.ascontiguousarray(self._S[:, np.arange(P), np.arange(P)])  # (N, P)
+        sb = self._s
+        uniq = [np.unique(a[:, p], return_inverse=True) for p in range(P)]
+        U = max([len(v) for v, _ in uniq] + [1])
+        vals = np.zeros((P, U))
+        code = np.empty((P, N), np.int64)
+        for p, (v, c) in enumerate(uniq):
+            vals[p, :len(v)] = v
+            code[p] = p * U + c.reshape(-1)
+        flat = code.ravel()
+        sbt = sb.T.ravel()
+        cnt = np.bincount(flat, minlength=P * U).reshape(P, U).astype(float)
+        SB = np.bincount(flat, weights=sbt, minlength=P * U).reshape(P, U)
+        SB2 = np.bincount(flat, weights=sbt * sbt, minlength=P * U).reshape(P, U)
+        C = self._C
+        self._sc = {
+            "a": a, "vals": vals, "cnt": cnt, "SB": SB, "SB2": SB2, "VSB": vals * SB, "V2C": vals * vals * cnt,
+            "Asum": a.sum(axis=0), "SBsum": sb.sum(axis=0), "U": U,
+            "code": (flat[None] + (P * U * np.arange(C))[:, None]).ravel(),  # (chain, P, N) -> chain P U + p U + u
+        }
 
     def _group_Ab(self) -> list[tuple[np.ndarray, np.ndarray]]:
         """``(A_i, b_i)`` of every group of blocks: (chain or 1, N, B, k, k) and (chain or 1, N, B, k)."""
@@ -466,9 +530,9 @@ class GibbsSampler:
     # Likelihood pieces
     # ------------------------------------------------------------------
     def _draw_omega(self) -> None:
-        X, g = self._data.X, self._data.group
-        psi = np.einsum("tp,ctp->ct", X, self._theta[:, g])
-        self._omegas = np.stack([draw_pg(1.0, p, r) for p, r in zip(psi, self._rngs)])  # (chain, n)
+        psi = np.einsum("up,cup->cu", self._cell_X, self._theta[:, self._cell_g])
+        h = self._cell_h
+        self._omegas = np.stack([draw_pg(h, p, r) for p, r in zip(psi, self._rngs)])  # (chain, cells)
         N, C = self._theta.shape[1], self._C
         gA = []
         for grp, o in zip(self._groups, self._gouter):
@@ -560,6 +624,9 @@ class GibbsSampler:
             self._sweep()
 
     def _sweep(self) -> None:
+        if self._scalar:
+            self._sweep_scalar()
+            return
         self._n_evals = np.zeros(self._C, np.int64)
         if self._data.outcome == "bernoulli":
             self._draw_omega()
@@ -589,6 +656,172 @@ class GibbsSampler:
             e = np.stack([r.standard_normal((N, len(grp.members), grp.k)) for r in self._rngs])
             theta[:, :, grp.idx] = gm.group_draw_theta(A, b, m[:, :, grp.idx], L, e)
         self._theta = theta
+
+    # ------------------------------------------------------------------
+    # Scalar blocks with a diagonal covariance: closed forms
+    # ------------------------------------------------------------------
+    def _log_prior_var(self, v):
+        """Log prior of ``tau`` at ``tau^2 = v`` (the density of ``tau``, up to a constant)."""
+        s2 = self.priors.tau_scale ** 2
+        if self.priors.tau_family == "half-normal":
+            return -0.5 * v / s2
+        return -np.log1p(v / s2)
+
+    def _scalar_stats(self, m: np.ndarray):
+        """Per-sweep statistics of the scalar path given the population means ``m`` (chain, N, P).
+
+        Returns ``(vals, cnt, W, SBu, base)``: per coefficient and unit the value
+        ``a`` ((1 or chain), P, U), the count (P, U) or None, ``W = sum (s_ip -
+        a_ip m_ip)^2`` (chain, P, U), the sums of ``s_ip`` ((1 or chain), P,
+        U), and ``base = sum_ip (s_ip m_ip - a_ip m_ip^2 / 2) - y'y / 2``
+        (chain,) (gaussian; None for bernoulli). The collapsed log-likelihood
+        of ``v_p = tau_p^2`` and ``s = sigma^2`` is then ``-n log(s) / 2 +
+        base / s + sum_pu [-cnt log(1 + v a / s) / 2 + v W / (2 s (s + v a))]``.
+        """
+        C, N, P = m.shape
+        if self._data.outcome == "gaussian":
+            sc = self._sc
+            if self._Z.shape[1] == 1:  # m_ip = beta_p: sums over units in closed form
+                beta = self._beta[:, :, None]  # (chain, P, 1)
+                W = sc["SB2"] - 2.0 * beta * sc["VSB"] + beta * beta * sc["V2C"]
+                b0 = self._beta
+                const = b0 @ sc["SBsum"] - 0.5 * (b0 * b0) @ sc["Asum"]
+            else:
+                r = self._s - sc["a"] * m  # (chain, N, P)
+                W = np.bincount(sc["code"], weights=np.swapaxes(r * r, 1, 2).ravel(),
+                                minlength=C * P * sc["U"]).reshape(C, P, sc["U"])
+                const = np.einsum("cnp,cnp->c", m, self._s - 0.5 * sc["a"] * m)
+            return sc["vals"][None], sc["cnt"], W, sc["SB"][None], const - 0.5 * self._yy
+        A = self._gA[0].reshape(C, N, P)
+        r = self._s - A * m
+        return np.swapaxes(A, 1, 2), None, np.swapaxes(r * r, 1, 2), self._s.T[None], None
+
+    def _sweep_scalar(self) -> None:
+        """One sweep when every coefficient is its own block and the covariance is diagonal.
+
+        The same updates, in the same order and on the same random numbers, as
+        :meth:`_sweep`, with the block algebra in closed form: each ``tau_p``
+        update, the noise scale's and the ridge move evaluate the collapsed
+        log-likelihood of :meth:`_scalar_stats` on a handful of per-unit
+        arrays (participants with equal ``(X_i'X_i)_pp`` pooled for a gaussian
+        outcome); without covariates the coefficients of ``beta`` are
+        independent given the scales, so they are drawn elementwise.
+        """
+        C = self._C
+        N, P = self._s.shape
+        self._n_evals = np.zeros(C, np.int64)
+        gauss = self._data.outcome == "gaussian"
+        if not gauss:
+            self._draw_omega()
+        m = self._mean()
+        vals, cnt, W, SBu, base = self._scalar_stats(m)
+        rnd, allr = self._rnd, self._all_random
+        R = len(rnd)
+        s2 = self._sigma ** 2 if self._sigma_free else np.ones(C)
+        if R:
+            vals_r = vals if allr else vals[:, rnd]
+            cnt_r = cnt if (allr or cnt is None) else cnt[rnd]
+            W_r = W if allr else W[:, rnd]
+
+            def terms(v, s):  # v (..., chain, R), s (..., chain) -> (..., chain, R), up to a constant in v
+                D = s[..., None, None] + v[..., None] * vals_r
+                logD = np.log(D)
+                logD = np.sum(logD, axis=-1) if cnt_r is None else np.sum(logD * cnt_r, axis=-1)
+                return (0.5 * v / s[..., None]) * np.sum(W_r / D, axis=-1) - 0.5 * logD
+
+            # 2a. every log tau_p (chain-major scalars); width 1, see _update_tau_diagonal
+            prior_var = self._log_prior_var
+
+            def logf_tau(x):
+                xx = x.reshape(x.shape[0], C, R)
+                v = np.exp(2.0 * xx)
+                return (terms(v, s2) + prior_var(v) + xx).reshape(x.shape)
+
+            x, k = gm.slice_step_vec(np.log(self._tau[:, rnd]).ravel(), logf_tau, self._rngs)
+            self._count(k)
+            tau = self._tau.copy()
+            tau[:, rnd] = np.exp(x).reshape(C, R)
+            self._tau = tau
+        if self._sigma_free:
+            self._update_sigma_scalar(terms if R else None, base, N * R)
+            s2 = self._sigma ** 2
+        v = self._tau ** 2  # (chain, P)
+        # 3. beta (and Gamma): theta integrated out
+        if self._Z.shape[1] == 1:
+            D = s2[:, None, None] + v[:, :, None] * vals  # (chain, P, U)
+            if cnt is None:
+                prec = np.sum(vals / D, axis=-1)
+            else:
+                prec = np.sum(vals * cnt / D, axis=-1)
+            prec += self.priors.beta_sd ** -2.0
+            lin = np.sum(SBu / D, axis=-1)
+            z = np.stack([r.standard_normal(P) for r in self._rngs])
+            # the Cholesky factor of the diagonal precision is its square root (as in _update_mean)
+            self._beta = lin / prec + z / np.sqrt(prec)
+            self._gamma = np.zeros((C, P, 0))
+        else:
+            L = np.sqrt(v)[:, None, :, None, None]
+            self._update_mean([self._scalar_Ab(s2)], [L])
+        # 4. theta
+        m = self._mean()
+        A, b = self._scalar_Ab(s2)
+        A, b = A[..., 0, 0], b[..., 0]
+        e = np.stack([r.standard_normal((N, P)) for r in self._rngs])
+        t = np.sqrt(v)[:, None, :]
+        M = 1.0 + (t * t) * A
+        self._theta = m + t * (t * (b - A * m) / M + e / np.sqrt(M))
+
+    def _scalar_Ab(self, s2):
+        """``(A_i, b_i)`` in the group layout of :meth:`_group_Ab` under noise variances ``s2`` (chain,)."""
+        C = self._C
+        N, P = self._s.shape
+        if self._data.outcome == "gaussian":
+            a = self._sc["a"]
+            if self._sigma_free:
+                return (a[None] / s2[:, None, None])[..., None, None], (self._s[None] / s2[:, None, None])[..., None]
+            return a[None, :, :, None, None], self._s[None, :, :, None]
+        return self._gA[0], self._s[None, :, :, None]
+
+    def _update_sigma_scalar(self, terms, base, n_terms) -> None:
+        """:meth:`_update_sigma` for the scalar path: the same two slice updates on the closed form."""
+        scale = self.priors.sigma_scale
+        C, n_obs = self._C, self._n_obs
+        v0 = self._tau[:, self._rnd] ** 2  # (chain, R)
+
+        def lik(x, s, v):  # x = log sigma (m, chain), s = exp(2 x), v (m, chain, R) or (chain, R)
+            out = -n_obs * x + base / s
+            if terms is not None:  # terms() leaves out -n_terms log(s) / 2 (constant in tau)
+                out = out + np.sum(terms(v, s), axis=-1) + n_terms * x
+            return out
+
+        def logf(x):
+            s = np.exp(2.0 * x)
+            return lik(x, s, v0) - 0.5 * s / scale**2 + x
+
+        x, k = gm.slice_step_vec(np.log(self._sigma), logf, self._rngs, width=min(1.0, 3.0 / math.sqrt(n_obs + 1)))
+        self._count(k)
+        sigma = np.exp(x)
+        if terms is None:
+            self._sigma = sigma
+            return
+        s0 = sigma**2
+        prior_var = self._log_prior_var
+
+        def logf_ridge(t):  # t (m, chain): variances v0 - t and s0 + t
+            v, s = v0 - t[..., None], s0 + t
+            ok = np.all(v > 0, axis=-1) & (s > 0)
+            v, s = np.where(ok[..., None], v, 1.0), np.where(ok, s, 1.0)
+            out = (lik(0.5 * np.log(s), s, v) - 0.5 * s / scale**2 - 0.5 * np.log(s)
+                   + np.sum(prior_var(v) - 0.5 * np.log(v), axis=-1))
+            return np.where(ok, out, -np.inf)
+
+        width = 0.5 * np.mean(v0 + s0[:, None], axis=1)
+        t, k = gm.slice_step_vec(np.zeros(C), logf_ridge, self._rngs, width=width)
+        self._count(k)
+        tau = self._tau.copy()
+        tau[:, self._rnd] = np.sqrt(v0 - t[:, None])
+        self._tau = tau
+        self._sigma = np.sqrt(s0 + t)
 
     def _count(self, k: np.ndarray) -> None:
         """Add per-column evaluation counts of a lockstep slice step (columns chain-major)."""
