@@ -155,7 +155,14 @@ class PriorSpec:
     ``tau_scale``: scale of the prior on heterogeneity scales;
     ``tau_family``: ``half-normal`` (default) or ``half-cauchy`` for that prior;
     ``sigma_scale``: scale of the half-normal prior on the noise sd;
-    ``covariance``: ``diagonal`` or ``full`` (LKJ with ``lkj_eta``).
+    ``covariance``: ``diagonal`` or ``full`` (LKJ with ``lkj_eta``);
+    ``population``: ``normal`` (default: ``theta_i ~ N(beta + Gamma w_i,
+    Sigma)``) or ``mixture`` (a finite mixture of ``components`` normal
+    populations sharing ``Sigma``, ``theta_i ~ N(mu_{z_i} + Gamma w_i,
+    Sigma)``, ``z_i ~ Categorical(pi)``, ``pi ~ Dirichlet(mixture_concentration)``,
+    ``mu_c`` with the prior of ``beta``; ``beta`` is then ``sum_c pi_c mu_c``);
+    ``components``: the number of components of a mixture (integer >= 2);
+    ``mixture_concentration``: the Dirichlet concentration of the weights.
     """
 
     beta_sd: float = 1.0
@@ -165,6 +172,9 @@ class PriorSpec:
     sigma_scale: float = 1.0
     covariance: Literal["diagonal", "full"] = "diagonal"
     lkj_eta: float = 2.0
+    population: Literal["normal", "mixture"] = "normal"
+    components: int = 4
+    mixture_concentration: float = 1.0
 
 
 @dataclass(frozen=True)
@@ -500,9 +510,19 @@ class _Parser:
 
     def priors(self, raw: Any) -> PriorSpec:
         t = self.table(raw, "priors", {"beta_sd", "gamma_sd", "tau_scale", "tau_family", "sigma_scale", "covariance",
-                                       "lkj_eta"})
+                                       "lkj_eta", "population", "components", "mixture_concentration"})
         pos = Number(0, low_open=True)
+        population = self.check(Choice(("normal", "mixture")), t.get("population", "normal"), "priors.population")
+        if population != "mixture":
+            for key in ("components", "mixture_concentration"):
+                if key in t:
+                    raise self.fail(f"priors.{key}", f'applies only with priors.population = "mixture", got '
+                                                     f'{format_value(t[key])} with population = "{population}"')
         return PriorSpec(
+            population=population,
+            components=self.check(Number(2, 1000, integer=True), t.get("components", 4), "priors.components"),
+            mixture_concentration=self.check(pos, t.get("mixture_concentration", 1.0),
+                                             "priors.mixture_concentration"),
             beta_sd=self.check(pos, t.get("beta_sd", 1.0), "priors.beta_sd"),
             gamma_sd=self.check(pos, t.get("gamma_sd", 0.5), "priors.gamma_sd"),
             tau_scale=self.check(pos, t.get("tau_scale", 0.5), "priors.tau_scale"),

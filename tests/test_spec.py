@@ -61,7 +61,27 @@ BAD = [
     ('[context]\nfeatures = ["arm"]', 'context.features[0]: name "arm" clashes with a study log column'),
     ('[priors]\ntau_scale = 0', "priors.tau_scale: expected a number > 0, got 0"),
     ('[study2]\nx = 1', "study2: unknown key"),
+    ('[priors]\npopulation = "types"', 'priors.population: expected one of "normal", "mixture", got "types"'),
+    ('[priors]\npopulation = "mixture"\ncomponents = 1', "priors.components: expected an integer in [2, 1000], got 1"),
+    ('[priors]\npopulation = "mixture"\ncomponents = 2.5',
+     "priors.components: expected an integer in [2, 1000], got 2.5"),
+    ('[priors]\ncomponents = 3', 'priors.components: applies only with priors.population = "mixture", got 3'),
+    ('[priors]\nmixture_concentration = 2', "priors.mixture_concentration: applies only with priors.population"),
+    ('[priors]\npopulation = "mixture"\nmixture_concentration = 0',
+     "priors.mixture_concentration: expected a number > 0, got 0"),
 ]
+
+
+def test_mixture_population_keys_and_defaults():
+    """Check the [priors] keys of the mixture population model: the normal model by default (so designs
+    without the keys keep their meaning), 4 components and concentration 1 when only population is set."""
+    assert parse_design(MINIMAL).priors.population == "normal"
+    pri = parse_design(MINIMAL + '[priors]\npopulation = "mixture"\n').priors
+    assert (pri.population, pri.components, pri.mixture_concentration) == ("mixture", 4, 1.0)
+    pri = parse_design(MINIMAL + '[priors]\npopulation = "mixture"\ncomponents = 3\nmixture_concentration = 0.5\n'
+                       'covariance = "full"\n').priors
+    assert (pri.components, pri.mixture_concentration, pri.covariance) == (3, 0.5, "full")
+    assert isinstance(pri.components, int)
 
 
 @pytest.mark.parametrize("extra, message", BAD)
