@@ -67,11 +67,13 @@ POOLED = {
     "pooled-kg": 'kind = "pooled-knowledge-gradient"',
     "pooled-kg-lookahead": 'kind = "pooled-knowledge-gradient"\nlookahead = 40',
     "pooled-greedy-e1": 'kind = "pooled-greedy"\nexplore_first = 1',
+    "pooled-kg-lookahead-e1": 'kind = "pooled-knowledge-gradient"\nlookahead = 40\nexplore_first = 1',
 }
 FLOORLESS = {  # the cost of the floor: the same rules with p_min = 0
     "pooled-greedy-p0": 'kind = "pooled-greedy"\np_min = 0.0',
     "pooled-kg-lookahead-p0": 'kind = "pooled-knowledge-gradient"\nlookahead = 40\np_min = 0.0',
     "pooled-greedy-e1-p0": 'kind = "pooled-greedy"\nexplore_first = 1\np_min = 0.0',
+    "pooled-kg-lookahead-e1-p0": 'kind = "pooled-knowledge-gradient"\nlookahead = 40\nexplore_first = 1\np_min = 0.0',
 }
 ORACLE = {
     "oracle-prior-thompson": 'kind = "oracle-prior-thompson"',

@@ -144,6 +144,16 @@ _POS = Number(0, low_open=True)
 _PROB = Number(0, 1)
 _POOL = Choice(("person", "all"))
 
+#: parameters of every kind built on the pooled posterior (pooled-thompson and the index rules)
+_POOLED = {
+    "sweeps": (Number(1, integer=True), 5),
+    "population_draws": (Number(1, integer=True), 4),
+    "burn_in": (Number(1, integer=True), 100),
+    "context": (Flag(), True),
+    "covariates": (Flag(), True),
+    "population_mean": (Choice(("integrated", "drawn")), "integrated"),
+}
+
 KINDS: dict[str, KindInfo] = {
     "random": KindInfo(summary="uniform random assignment (the control)"),
     "epsilon-greedy": KindInfo(
@@ -182,13 +192,7 @@ KINDS: dict[str, KindInfo] = {
     "oracle": KindInfo(simulation_only=True, summary="knows the truth (simulation only)"),
     # Pooled (hierarchical) policies: see poolbandit.policies.pooled.
     "pooled-thompson": KindInfo(
-        {
-            "sweeps": (Number(1, integer=True), 5),
-            "population_draws": (Number(1, integer=True), 4),
-            "burn_in": (Number(1, integer=True), 100),
-            "context": (Flag(), True),
-            "covariates": (Flag(), True),
-        },
+        dict(_POOLED),
         summary="Thompson sampling from the partially pooled hierarchical posterior",
     ),
     "complete-pooling-thompson": KindInfo(
@@ -205,13 +209,6 @@ KINDS: dict[str, KindInfo] = {
 
 # Horizon-aware index rules: see poolbandit.policies.horizon and .bayes_optimal.
 _FLOOR = {"p_min": (Number(0, 1), 0.02)}
-_POOLED = {
-    "sweeps": (Number(1, integer=True), 5),
-    "population_draws": (Number(1, integer=True), 4),
-    "burn_in": (Number(1, integer=True), 100),
-    "context": (Flag(), True),
-    "covariates": (Flag(), True),
-}
 _RULES = {
     "greedy": ({}, "the arm with the highest posterior mean"),
     "bayes-ucb": ({"c": (_NONNEG, 0.0), "quantile": (Number(0, 1, low_open=True, high_open=True), None)},

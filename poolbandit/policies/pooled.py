@@ -37,7 +37,12 @@ and averaged over the last ``population_draws`` sweeps of the sampler:
 
 Only the population level is represented by draws; the participant level,
 where the uncertainty that drives exploration lives, is integrated exactly
-(a Rao-Blackwellised estimate of the posterior probability). The table is a
+(a Rao-Blackwellised estimate of the posterior probability). By default
+(``population_mean = "integrated"``) the population mean and the covariate
+effects are integrated as well: given the scales of a draw the model is
+jointly Gaussian in ``(beta, Gamma, theta_1..N)``, so the moments of each
+``theta_i`` are closed forms (:func:`_integrated_moments`) and only the scales
+``Sigma``, ``sigma`` (and the Polya-Gamma variables) are represented by draws. The table is a
 deterministic function of the retained draws, so drawing the arm from it
 gives a logged propensity that is exactly the probability used, with no
 Monte Carlo noise between "the probability" and "the propensity", which
@@ -71,7 +76,7 @@ References
 from __future__ import annotations
 
 import copy
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import xarray as xr
@@ -166,6 +171,75 @@ def _gaussian_conditional(A: np.ndarray, b: np.ndarray, m: np.ndarray, L: np.nda
     return m + np.einsum("...ij,...j->...i", cov, r), cov
 
 
+def _integrated_moments(A: np.ndarray, b: np.ndarray, L: np.ndarray, Z: np.ndarray, beta_sd: float,
+                        gamma_sd: float) -> tuple[np.ndarray, np.ndarray]:
+    """Every participant's coefficient moments given the scales, with ``beta`` and ``Gamma`` integrated out.
+
+    Given the scales (``Sigma = L L'``, the noise or Polya-Gamma terms in
+    ``A`` and ``b``), the model is jointly Gaussian in ``phi = (beta,
+    Gamma)`` and the participant deviations, so the population mean can be
+    integrated in closed form instead of being represented by one draw.
+    Integrating ``theta_i ~ N(m_i, Sigma)`` out of participant ``i``'s
+    likelihood ``exp(-theta'A_i theta/2 + b_i'theta)`` leaves a Gaussian
+    likelihood of ``m_i = beta + Gamma w_i`` with precision
+    ``A_i - A_i M_i A_i`` and linear term ``b_i - A_i M_i b_i``, where
+    ``M_i = (Sigma^{-1} + A_i)^{-1}`` (Woodbury; no inverse of ``A_i`` or
+    ``Sigma`` is formed). Summed over participants with the prior
+    ``beta ~ N(0, beta_sd^2)``, ``Gamma ~ N(0, gamma_sd^2)`` this gives
+    ``phi ~ N(mu, V)``; then ``theta_i = G_i m_i + M_i b_i + N(0, M_i)``
+    with ``G_i = I - M_i A_i`` has mean ``G_i mbar_i + M_i b_i`` and
+    covariance ``M_i + G_i V_i G_i'`` (``mbar_i``, ``V_i`` the moments of
+    ``m_i``).
+
+    Parameters
+    ----------
+    A : ndarray (n, B, e, e)
+        Likelihood precision blocks (``B`` arm blocks of ``e`` coefficients
+        for a diagonal ``Sigma``; one block of all coefficients for a full one).
+    b : ndarray (n, B, e)
+    L : ndarray (B, e, e)
+        Factor of each block of ``Sigma``.
+    Z : ndarray (n, a)
+        ``(1, w_i)``: the intercept and the participant covariates.
+    beta_sd, gamma_sd : float
+        Prior scales of the population mean and the covariate effects.
+
+    Returns
+    -------
+    mean : ndarray (n, B, e)
+    cov : ndarray (n, B, e, e)
+
+    References
+    ----------
+    .. [1] Gelfand, A. E. and Smith, A. F. M. (1990), see the module
+       docstring (Rao-Blackwellised estimates from Gibbs output).
+    .. [2] Lindley, D. V. and Smith, A. F. M. (1972). Bayes estimates for the
+       linear model. *JRSS B* 34(1), 1-41 (the hierarchical normal linear model).
+    """
+    n, nb, e = b.shape
+    a = Z.shape[1]
+    _, M = _gaussian_conditional(A, b, np.zeros_like(b), L)
+    M = np.broadcast_to(M, A.shape)
+    AM = A @ M
+    Pm = A - AM @ A
+    Pm = 0.5 * (Pm + np.swapaxes(Pm, -1, -2))
+    cm = b - np.einsum("nbij,nbj->nbi", AM, b)
+    prec = np.einsum("nj,nl,nbpq->bjplq", Z, Z, Pm).reshape(nb, a * e, a * e)
+    lin = np.einsum("nj,nbp->bjp", Z, cm).reshape(nb, a * e)
+    prior = np.concatenate([np.full(e, float(beta_sd) ** -2.0), np.full((a - 1) * e, float(gamma_sd) ** -2.0)])
+    prec[:, np.arange(a * e), np.arange(a * e)] += prior
+    V = np.linalg.inv(prec)
+    V = 0.5 * (V + np.swapaxes(V, -1, -2))
+    mu = np.einsum("bij,bj->bi", V, lin).reshape(nb, a, e)
+    V = V.reshape(nb, a, e, a, e)
+    mbar = np.einsum("nj,bjp->nbp", Z, mu)
+    Vi = np.einsum("nj,nl,bjplq->nbpq", Z, Z, V)
+    G = np.eye(e) - M @ A
+    mean = np.einsum("nbij,nbj->nbi", G, mbar) + np.einsum("nbij,nbj->nbi", M, b)
+    cov = M + G @ Vi @ np.swapaxes(G, -1, -2)
+    return mean, 0.5 * (cov + np.swapaxes(cov, -1, -2))
+
+
 @dataclass(frozen=True)
 class _PopulationDraw:
     """One retained sweep: population parameters and the participant likelihood terms.
@@ -181,6 +255,11 @@ class _PopulationDraw:
     A: np.ndarray
     b: np.ndarray
     L: np.ndarray | None = None
+    #: with ``population_mean = "integrated"``: every participant's coefficient moments given the
+    #: scales of this sweep, ``beta`` and ``Gamma`` integrated out (:func:`_integrated_moments`);
+    #: mean (N, P) and covariance in the layout of :meth:`PooledThompsonPolicy.conditional`
+    mean: np.ndarray | None = None
+    cov: np.ndarray | None = None
 
 
 # --------------------------------------------------------------------------
@@ -206,6 +285,16 @@ class PooledThompsonPolicy(Policy):
     population_draws : int, default=4
         The last this many sweeps of the step are the population draws the
         probabilities are averaged over (at least this many sweeps are run).
+    population_mean : {"integrated", "drawn"}, default="integrated"
+        ``"integrated"``: given each retained draw's scales (``Sigma``, noise
+        sd or Polya-Gamma variables), the population mean ``beta`` and the
+        covariate effects ``Gamma`` are integrated out in closed form
+        (:func:`_integrated_moments`), so only the scales are represented by
+        draws; ``"drawn"``: the draw's own ``beta`` and ``Gamma`` are used.
+        Integrating removes the Monte Carlo noise of the population mean that
+        every participant would otherwise share (one unlucky draw sends the
+        whole cohort the same way) at the cost of a few small linear solves
+        per retained draw.
     burn_in : int, default=100
         Sweeps of the first fit, which starts from a prior draw.
     context : bool, default=True
@@ -298,14 +387,33 @@ class PooledThompsonPolicy(Policy):
         n, k, d = self.n_participants, self.n_arms, self._width
         if st.corr_chol is None:
             blocks = np.einsum("nkakb->nkab", A.reshape(n, k, d, k, d)).copy()
-            return _PopulationDraw(st.beta.copy(), st.gamma.copy(), st.tau.copy(), blocks, b.reshape(n, k, d).copy())
-        return _PopulationDraw(st.beta.copy(), st.gamma.copy(), st.tau.copy(), A.copy(), b.copy(), st.chol_sigma.copy())
+            draw = _PopulationDraw(st.beta.copy(), st.gamma.copy(), st.tau.copy(), blocks, b.reshape(n, k, d).copy())
+        else:
+            draw = _PopulationDraw(st.beta.copy(), st.gamma.copy(), st.tau.copy(), A.copy(), b.copy(),
+                                   st.chol_sigma.copy())
+        if self.params.get("population_mean", "integrated") == "integrated":
+            draw = replace(draw, **dict(zip(("mean", "cov"), self._integrated(draw))))
+        return draw
+
+    def _integrated(self, draw: _PopulationDraw) -> tuple[np.ndarray, np.ndarray]:
+        """Moments of every participant's coefficients given the draw's scales (beta, Gamma integrated out)."""
+        n, k, d = self.n_participants, self.n_arms, self._width
+        Z = np.concatenate([np.ones((n, 1)), self._W], axis=1)
+        pr = self.design.priors
+        if draw.L is None:
+            L = np.zeros((k, d, d))
+            L[:, np.arange(d), np.arange(d)] = draw.tau.reshape(k, d)
+            mean, cov = _integrated_moments(draw.A, draw.b, L, Z, pr.beta_sd, pr.gamma_sd)
+            return mean.reshape(n, -1), cov
+        mean, cov = _integrated_moments(draw.A[:, None], draw.b[:, None], draw.L[None], Z, pr.beta_sd, pr.gamma_sd)
+        return mean[:, 0], cov[:, 0]
 
     def conditional(self, draw: _PopulationDraw, participant: np.ndarray):
         """Coefficients of ``participant`` given one population draw: mean (n, P) and covariance.
 
-        The covariance is (n, K, d, d) arm blocks for a diagonal ``Sigma``
-        (``d = 1 + F``), else (n, P, P).
+        Given all the draw's population parameters, its ``beta`` and ``Gamma``
+        included. The covariance is (n, K, d, d) arm blocks for a diagonal
+        ``Sigma`` (``d = 1 + F``), else (n, P, P).
         """
         participant = np.asarray(participant)
         n, k, d = len(participant), self.n_arms, self._width
@@ -317,16 +425,28 @@ class PooledThompsonPolicy(Policy):
             return mean.reshape(n, -1), cov
         return _gaussian_conditional(draw.A[participant], draw.b[participant], m, draw.L)
 
+    def moments(self, draw: _PopulationDraw, participant: np.ndarray):
+        """The coefficient moments the policy acts on: :meth:`conditional`, or with
+        ``population_mean = "integrated"`` (the default) the same with ``beta`` and ``Gamma``
+        integrated out given the draw's scales (:func:`_integrated_moments`)."""
+        if draw.mean is None:
+            return self.conditional(draw, participant)
+        participant = np.asarray(participant)
+        return draw.mean[participant], draw.cov[participant]
+
     def arm_value_moments(self, draw: _PopulationDraw, participant: np.ndarray, context: np.ndarray):
-        """Mean (n, K) and covariance (n, K) variances or (n, K, K) of the arm values in ``context``."""
+        """Mean (n, K) and covariance (n, K) variances or (n, K, K) of the arm values in ``context``
+        (from :meth:`moments`)."""
+        participant = np.asarray(participant)
         if draw.L is None and self._width == 1:  # arm levels only: scalar blocks, no batched algebra
-            participant = np.asarray(participant)
+            if draw.mean is not None:
+                return draw.mean[participant], draw.cov[participant, :, 0, 0]
             a, b = draw.A[participant, :, 0, 0], draw.b[participant, :, 0]
             m = draw.beta + self._W[participant] @ draw.gamma.T
             t2 = draw.tau**2
             var = t2 / (1.0 + t2 * a)
             return m + var * (b - a * m), var
-        mean, cov = self.conditional(draw, participant)
+        mean, cov = self.moments(draw, participant)
         z = np.concatenate([np.ones((len(participant), 1)), self._model_context(context)], axis=1)  # (n, d)
         n, k, d = len(participant), self.n_arms, self._width
         mv = np.einsum("nkd,nd->nk", mean.reshape(n, k, d), z)

@@ -52,6 +52,10 @@ burn_in = 30
 kind = "pooled-thompson"
 burn_in = 30
 clip = [0.1, 0.8]
+[policies.pooled-drawn]
+kind = "pooled-thompson"
+burn_in = 30
+population_mean = "drawn"
 [policies.pooled-forced]
 kind = "pooled-thompson"
 burn_in = 30
@@ -182,6 +186,55 @@ def test_conditional_equals_gaussian_conditioning(covariance):
             assert np.allclose(mean[i], m, atol=1e-12) and np.allclose(full, Sigma, atol=1e-12)
 
 
+def _joint_reference(X, y, who, Z, Sigma, noise_var, beta_sd, gamma_sd):
+    """theta_i = (z_i' (x) I) phi + u_i, phi ~ N(0, diag), u_i ~ N(0, Sigma), y = X theta + e:
+    the moments of every theta_i by Gaussian conditioning of the whole joint model in data space."""
+    n, a = Z.shape
+    P = Sigma.shape[0]
+    H = np.einsum("nj,pq->npjq", Z, np.eye(P)).reshape(n, P, a * P)  # theta_i = H_i phi + u_i
+    # the latent vector (phi, u_1..u_n) and its prior covariance
+    prior = sla.block_diag(np.diag(np.r_[np.full(P, beta_sd**2), np.full((a - 1) * P, gamma_sd**2)]),
+                           *([Sigma] * n))
+    T = np.zeros((n * P, a * P + n * P))  # theta (stacked) = T latent
+    for i in range(n):
+        T[i * P:(i + 1) * P, :a * P] = H[i]
+        T[i * P:(i + 1) * P, a * P + i * P:a * P + (i + 1) * P] = np.eye(P)
+    D = np.zeros((len(y), n * P))  # y = D theta + e
+    for r, (i, x) in enumerate(zip(who, X)):
+        D[r, i * P:(i + 1) * P] = x
+    F = D @ T
+    mean, cov = _data_space_reference(F, y, np.zeros(len(prior)), prior, noise_var)
+    tm, tc = T @ mean, T @ cov @ T.T
+    return tm.reshape(n, P), np.stack([tc[i * P:(i + 1) * P, i * P:(i + 1) * P] for i in range(n)])
+
+
+@pytest.mark.parametrize("covariance", ["diagonal", "full"])
+def test_integrated_moments_equal_joint_gaussian_conditioning(covariance):
+    """With population_mean = "integrated" (the default) each retained draw carries every
+    participant's coefficient moments given the draw's scales only, beta and Gamma integrated out:
+    they equal Gaussian conditioning of the whole joint normal model (phi, u_1..u_n) on all
+    observations in data space (BDA3 section 3.5; Lindley and Smith 1972; scipy.linalg), to 1e-8
+    (different algebra, rounding only). Late enrollers are included (no observations)."""
+    design = small_design(covariance=covariance)
+    pol, (who, arm, ctx, y), w = fitted_policy("pooled", design)
+    draw = pol.retained_draws[-1]
+    st = pol.sampler.state
+    Sigma = st.chol_sigma @ st.chol_sigma.T
+    Z = np.concatenate([np.ones((24, 1)), w], axis=1)
+    ref_mean, ref_cov = _joint_reference(design_rows(arm, ctx, 3), y, who, Z, Sigma, st.sigma**2,
+                                         design.priors.beta_sd, design.priors.gamma_sd)
+    mean, cov = pol.moments(draw, np.arange(24))
+    assert np.allclose(mean, ref_mean, atol=1e-8)
+    full = np.stack([sla.block_diag(*c) for c in cov]) if covariance == "diagonal" else cov
+    assert np.allclose(full, ref_cov, atol=1e-8)
+    # the drawn mode acts on the draw's own beta and Gamma: its moments are conditional()'s (tested above)
+    pol_d, _, _ = fitted_policy("pooled-drawn", design)
+    d = pol_d.retained_draws[-1]
+    assert d.mean is None
+    for got, want in zip(pol_d.moments(d, np.arange(24)), pol_d.conditional(d, np.arange(24))):
+        assert np.array_equal(got, want)
+
+
 def test_bernoulli_conditional_given_polya_gamma():
     """Bernoulli: given the Polya-Gamma draws omega, the likelihood of theta_i is Gaussian with
     precision X' Omega X and linear term X'(y - 1/2) (Polson, Scott and Windle 2013), so the
@@ -207,13 +260,13 @@ def test_bernoulli_conditional_given_polya_gamma():
 
 def test_late_enrollers_start_from_population_part():
     """A participant with no observations gets, for every retained draw, arm values
-    N(r_k'(beta + Gamma w), r_k' Sigma r_k): the policy's table equals the average over draws
+    N(r_k'(beta + Gamma w), r_k' Sigma r_k) (population_mean = "drawn"): the table equals the average over draws
     of prob_best(scipy.stats.norm) on that population part (quadrature tolerance 4e-3, see
     test_gaussian_quadrature_matches_prob_best_and_quad). And pooling moves them: after the
     first wave shows story clearly best, a new participant's first table favours story, while
     unpooled Thompson (own data only) is uniform."""
     design = small_design()
-    pol, _, w = fitted_policy("pooled", design)
+    pol, _, w = fitted_policy("pooled-drawn", design)
     late = np.arange(12, 24)
     ctx = np.zeros((12, 1))
     ctx[::2] = 1.0
