@@ -374,79 +374,90 @@ def slice_step_vec(x0: np.ndarray, logf: Callable[[np.ndarray], np.ndarray], rng
     per = B // nr
     rows = 3 + spec
     U = rngs[0].random((B, rows)) if nr == 1 else np.concatenate([r.random((per, rows)) for r in rngs])
-    xs, Ul = xa.tolist(), U.tolist()
-    ws = np.broadcast_to(np.asarray(width, dtype=float), (B,)).tolist()
+    wa = np.broadcast_to(np.asarray(width, dtype=float), (B,))
     K = ahead + 1
-    los, his, grid = [0.0] * B, [0.0] * B, []
-    for b in range(B):
-        x, w, u = xs[b], ws[b], Ul[b]
-        lo = x - w * u[1]
-        hi = lo + w
-        los[b], his[b] = lo, hi
-        row = [x] + [lo - s * w for s in range(K)] + [hi + s * w for s in range(K)]
-        for j in range(3, rows):  # speculative shrinkage candidates of the first interval
+    lo_a = xa - wa * U[:, 1]
+    steps = np.arange(K, dtype=float)[:, None] * wa
+    xs, Ul, ws, los = xa.tolist(), U.tolist(), wa.tolist(), lo_a.tolist()
+    his = [lo + w for lo, w in zip(los, ws)]
+    spec_rows = []  # speculative shrinkage candidates of the first interval
+    for x, lo, hi, u in zip(xs, los, his, Ul):
+        row = []
+        for j in range(3, rows):
             c = lo + (hi - lo) * u[j]
             row.append(c)
             if c < x:
                 lo = c
             else:
                 hi = c
-        grid.append(row)
-    F = logf(np.array(grid).T).T.tolist()
-    levels, n = [0.0] * B, [1] * B
-    bl, br = [0] * B, [0] * B  # stepping-out budgets left on each side
+        spec_rows.append(row)
+    F = logf(np.concatenate([xa[None], lo_a - steps, (lo_a + wa) + steps, np.array(spec_rows).T])).T.tolist()
+    levels, n, moved = [0.0] * B, [1] * B, [False] * B
+    cont = []  # (scalar, side, budget left): stepping out ran past the evaluated points (rare)
     for b in range(B):
-        f0, u = F[b][0], Ul[b]
+        Fb, u = F[b], Ul[b]
+        f0 = Fb[0]
         if not math.isfinite(f0):
             raise FloatingPointError(f"slice sampler started at a point of zero density (x={xs[b]!r})")
-        levels[b] = f0 + math.log1p(-u[0])  # f0 minus a standard exponential (inverse cdf)
-        jl = int(max_steps * u[2])  # floor of a non-negative value
-        bl[b], br[b] = jl, max_steps - 1 - jl
-    Fl = [Fb[1:K + 1] for Fb in F]
-    Fr = [Fb[K + 1:2 * K + 1] for Fb in F]
-    moved = [False] * B
-    while True:
-        more = False
-        for b in range(B):
-            level, w = levels[b], ws[b]
-            for side, budget, vals in ((0, bl, Fl), (1, br, Fr)):
-                j = budget[b]
-                if j <= 0:
-                    continue
-                for f in vals[b]:
-                    n[b] += 1
-                    if not f > level:
-                        j = 0
-                        break
-                    if side:
-                        his[b] += w
-                    else:
-                        los[b] -= w
-                    moved[b] = True
-                    j -= 1
-                    if j == 0:
-                        break
-                budget[b] = j
-                more = more or j > 0
-        if not more:
-            break
-        # rare: some scalar's stepping out ran past the evaluated points
-        pts = np.array([[los[b] - s * ws[b] if bl[b] > 0 else xs[b] for s in range(K)]
-                        + [his[b] + s * ws[b] if br[b] > 0 else xs[b] for s in range(K)] for b in range(B)])
-        G = logf(pts.T).T.tolist()
-        Fl = [g[:K] for g in G]
-        Fr = [g[K:] for g in G]
+        level = f0 + math.log1p(-u[0])  # f0 minus a standard exponential (inverse cdf)
+        levels[b] = level
+        jl = int(max_steps * u[2])  # stepping-out budgets (floor of a non-negative value)
+        jr = max_steps - 1 - jl
+        w = ws[b]
+        lim = K if jl > K else jl
+        k = 0
+        while k < lim and Fb[1 + k] > level:
+            k += 1
+        n[b] += k + 1 if k < lim else lim
+        if k:
+            los[b] -= k * w
+            moved[b] = True
+            if k == K and jl > K:
+                cont.append((b, 0, jl - K))
+        lim = K if jr > K else jr
+        k = 0
+        while k < lim and Fb[K + 1 + k] > level:
+            k += 1
+        n[b] += k + 1 if k < lim else lim
+        if k:
+            his[b] += k * w
+            moved[b] = True
+            if k == K and jr > K:
+                cont.append((b, 1, jr - K))
+    while cont:  # evaluate K more stepping-out positions for each continuing side
+        pts = np.repeat(xa[None], K, axis=0)
+        pts = [pts.copy(), pts.copy()]
+        for b, side, _ in cont:
+            w = ws[b]
+            pts[side][:, b] = [his[b] + s * w for s in range(K)] if side else [los[b] - s * w for s in range(K)]
+        G = logf(np.concatenate(pts)).T.tolist()
+        nxt = []
+        for b, side, j in cont:
+            g, level, w = G[b][side * K:(side + 1) * K], levels[b], ws[b]
+            lim = K if j > K else j
+            k = 0
+            while k < lim and g[k] > level:
+                k += 1
+            n[b] += k + 1 if k < lim else lim
+            if side:
+                his[b] += k * w
+            else:
+                los[b] -= k * w
+            if k == K and j > K:
+                nxt.append((b, side, j - K))
+        cont = nxt
     out = list(xs)
+    cands = [None if moved[b] else spec_rows[b] for b in range(B)]
+    vals = [None if moved[b] else F[b][2 * K + 1:] for b in range(B)]
     us = [u[3:] for u in Ul]
-    cands = [None if moved[b] else grid[b][2 * K + 1:] for b in range(B)]
-    vals_c = [None if moved[b] else F[b][2 * K + 1:] for b in range(B)]
-    active = list(range(B))
+    active = range(B)
     while True:
         need = [b for b in active if cands[b] is None]
         if need:
             pad = [[x] * spec for x in xs]
             for b in need:
-                x, lo, hi, u, row = xs[b], los[b], his[b], us[b], pad[b]
+                x, lo, hi, u = xs[b], los[b], his[b], us[b]
+                row = pad[b]
                 for j in range(spec):  # candidate j assumes candidates 0..j-1 are rejected
                     c = lo + (hi - lo) * u[j]
                     row[j] = c
@@ -457,21 +468,25 @@ def slice_step_vec(x0: np.ndarray, logf: Callable[[np.ndarray], np.ndarray], rng
                 cands[b] = row
             G = logf(np.array(pad).T).T.tolist()
             for b in need:
-                vals_c[b] = G[b]
+                vals[b] = G[b]
         still = []
         for b in active:
-            level, row, g, x = levels[b], cands[b], vals_c[b], xs[b]
+            level, row, g, x = levels[b], cands[b], vals[b], xs[b]
             for j in range(spec):
-                n[b] += 1
                 if g[j] > level:
                     out[b] = row[j]
+                    n[b] += j + 1
                     break
-                if row[j] < x:
-                    los[b] = row[j]
-                else:
-                    his[b] = row[j]
             else:
-                if his[b] - los[b] > 1e-12 * (1.0 + abs(x)):
+                n[b] += spec
+                lo, hi = los[b], his[b]
+                for c in row:
+                    if c < x:
+                        lo = c
+                    else:
+                        hi = c
+                los[b], his[b] = lo, hi
+                if hi - lo > 1e-12 * (1.0 + abs(x)):
                     still.append(b)
                     cands[b] = None
                 # pragma: no cover - else shrinkage collapsed numerically: keep x0
@@ -481,9 +496,7 @@ def slice_step_vec(x0: np.ndarray, logf: Callable[[np.ndarray], np.ndarray], rng
         for i, r in enumerate(rngs):
             lo_b, hi_b = i * per, (i + 1) * per
             if any(lo_b <= b < hi_b for b in still):
-                fresh = r.random((per, spec)).tolist()
-                for b in range(lo_b, hi_b):
-                    us[b] = fresh[b - lo_b]
+                us[lo_b:hi_b] = r.random((per, spec)).tolist()
 
 
 # --------------------------------------------------------------------------

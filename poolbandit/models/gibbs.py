@@ -390,6 +390,17 @@ class GibbsSampler:
         self._rnd = rnd
         self._all_random = len(rnd) == P
         if self._data.outcome != "gaussian":
+            # every cell's design row has one nonzero entry (scalar blocks): its coefficient and value
+            X = self._cell_X
+            p = np.argmax(X != 0, axis=1) if len(X) else np.zeros(0, np.int64)
+            val = X[np.arange(len(X)), p]
+            flat = self._cell_g * P + p
+            self._cell_flat = flat
+            self._cell_val = None if np.all(val == 1.0) else val
+            if len(np.unique(flat)) == len(flat):
+                self._cell_sum = None  # one cell per (participant, coefficient): A is filled in place
+            else:
+                self._cell_sum = sp.csr_matrix((val * val, (flat, np.arange(len(flat)))), shape=(N * P, len(flat)))
             return
         a = np.ascontiguousarray(self._S[:, np.arange(P), np.arange(P)])  # (N, P)
         sb = self._s
@@ -408,7 +419,7 @@ class GibbsSampler:
         C = self._C
         self._sc = {
             "a": a, "vals": vals, "cnt": cnt, "SB": SB, "SB2": SB2, "VSB": vals * SB, "V2C": vals * vals * cnt,
-            "Asum": a.sum(axis=0), "SBsum": sb.sum(axis=0), "U": U,
+            "VC": vals * cnt, "Asum": a.sum(axis=0), "SBsum": sb.sum(axis=0), "U": U,
             "code": (flat[None] + (P * U * np.arange(C))[:, None]).ravel(),  # (chain, P, N) -> chain P U + p U + u
         }
 
@@ -530,10 +541,24 @@ class GibbsSampler:
     # Likelihood pieces
     # ------------------------------------------------------------------
     def _draw_omega(self) -> None:
-        psi = np.einsum("up,cup->cu", self._cell_X, self._theta[:, self._cell_g])
-        h = self._cell_h
-        self._omegas = np.stack([draw_pg(h, p, r) for p, r in zip(psi, self._rngs)])  # (chain, cells)
         N, C = self._theta.shape[1], self._C
+        h = self._cell_h
+        if self._scalar:
+            P = self._theta.shape[2]
+            psi = self._theta.reshape(C, N * P)[:, self._cell_flat]
+            if self._cell_val is not None:
+                psi = psi * self._cell_val
+            self._omegas = np.stack([draw_pg(h, p, r) for p, r in zip(psi, self._rngs)])  # (chain, cells)
+            if self._cell_sum is None:
+                A = np.zeros((C, N * P))
+                A[:, self._cell_flat] = self._omegas if self._cell_val is None else self._omegas * self._cell_val**2
+            else:
+                A = np.asarray(self._cell_sum @ self._omegas.T).T
+            self._gA = [A.reshape(C, N, P, 1, 1)]
+            self._A_bern = None
+            return
+        psi = np.einsum("up,cup->cu", self._cell_X, self._theta[:, self._cell_g])
+        self._omegas = np.stack([draw_pg(h, p, r) for p, r in zip(psi, self._rngs)])  # (chain, cells)
         gA = []
         for grp, o in zip(self._groups, self._gouter):
             F = o.shape[1]
@@ -678,7 +703,8 @@ class GibbsSampler:
         of ``v_p = tau_p^2`` and ``s = sigma^2`` is then ``-n log(s) / 2 +
         base / s + sum_pu [-cnt log(1 + v a / s) / 2 + v W / (2 s (s + v a))]``.
         """
-        C, N, P = m.shape
+        C = self._C
+        N, P = self._s.shape
         if self._data.outcome == "gaussian":
             sc = self._sc
             if self._Z.shape[1] == 1:  # m_ip = beta_p: sums over units in closed form
@@ -713,7 +739,8 @@ class GibbsSampler:
         gauss = self._data.outcome == "gaussian"
         if not gauss:
             self._draw_omega()
-        m = self._mean()
+        no_cov = self._Z.shape[1] == 1
+        m = self._beta[:, None, :] if no_cov else self._mean()
         vals, cnt, W, SBu, base = self._scalar_stats(m)
         rnd, allr = self._rnd, self._all_random
         R = len(rnd)
@@ -722,20 +749,21 @@ class GibbsSampler:
             vals_r = vals if allr else vals[:, rnd]
             cnt_r = cnt if (allr or cnt is None) else cnt[rnd]
             W_r = W if allr else W[:, rnd]
-
-            def terms(v, s):  # v (..., chain, R), s (..., chain) -> (..., chain, R), up to a constant in v
-                D = s[..., None, None] + v[..., None] * vals_r
-                logD = np.log(D)
-                logD = np.sum(logD, axis=-1) if cnt_r is None else np.sum(logD * cnt_r, axis=-1)
-                return (0.5 * v / s[..., None]) * np.sum(W_r / D, axis=-1) - 0.5 * logD
-
             # 2a. every log tau_p (chain-major scalars); width 1, see _update_tau_diagonal
+            a_s = vals_r / s2[:, None, None]  # (chain, R, units): 1 + v a / s2 per unit
+            hw = W_r * (0.5 / s2**2)[:, None, None]
             prior_var = self._log_prior_var
 
             def logf_tau(x):
                 xx = x.reshape(x.shape[0], C, R)
                 v = np.exp(2.0 * xx)
-                return (terms(v, s2) + prior_var(v) + xx).reshape(x.shape)
+                D = v[..., None] * a_s
+                D += 1.0
+                q = (hw / D).sum(axis=-1)
+                np.log(D, out=D)
+                if cnt_r is not None:
+                    D *= cnt_r
+                return (v * q - 0.5 * D.sum(axis=-1) + prior_var(v) + xx).reshape(x.shape)
 
             x, k = gm.slice_step_vec(np.log(self._tau[:, rnd]).ravel(), logf_tau, self._rngs)
             self._count(k)
@@ -743,38 +771,42 @@ class GibbsSampler:
             tau[:, rnd] = np.exp(x).reshape(C, R)
             self._tau = tau
         if self._sigma_free:
-            self._update_sigma_scalar(terms if R else None, base, N * R)
+            self._update_sigma_scalar(vals_r if R else None, cnt_r if R else None, W_r if R else None, base)
             s2 = self._sigma ** 2
         v = self._tau ** 2  # (chain, P)
         # 3. beta (and Gamma): theta integrated out
-        if self._Z.shape[1] == 1:
-            D = s2[:, None, None] + v[:, :, None] * vals  # (chain, P, U)
-            if cnt is None:
-                prec = np.sum(vals / D, axis=-1)
-            else:
-                prec = np.sum(vals * cnt / D, axis=-1)
+        if no_cov:
+            D = v[:, :, None] * vals
+            D += s2[:, None, None]  # (chain, P, units)
+            prec = ((vals if cnt is None else self._sc["VC"]) / D).sum(axis=-1)
             prec += self.priors.beta_sd ** -2.0
-            lin = np.sum(SBu / D, axis=-1)
-            z = np.stack([r.standard_normal(P) for r in self._rngs])
+            lin = (SBu / D).sum(axis=-1)
+            z = np.array([r.standard_normal(P) for r in self._rngs])
             # the Cholesky factor of the diagonal precision is its square root (as in _update_mean)
             self._beta = lin / prec + z / np.sqrt(prec)
-            self._gamma = np.zeros((C, P, 0))
+            m = self._beta[:, None, :]
         else:
             L = np.sqrt(v)[:, None, :, None, None]
             self._update_mean([self._scalar_Ab(s2)], [L])
-        # 4. theta
-        m = self._mean()
-        A, b = self._scalar_Ab(s2)
-        A, b = A[..., 0, 0], b[..., 0]
-        e = np.stack([r.standard_normal((N, P)) for r in self._rngs])
+            m = self._mean()
+        # 4. theta: theta_ip = m_ip + t (t r / (s + v a) + e sqrt(s / (s + v a))), r = s_ip - a_ip m_ip
+        e = np.array([r.standard_normal((N, P)) for r in self._rngs])
         t = np.sqrt(v)[:, None, :]
-        M = 1.0 + (t * t) * A
-        self._theta = m + t * (t * (b - A * m) / M + e / np.sqrt(M))
+        vv = v[:, None, :]
+        if gauss:
+            a = self._sc["a"]
+            D = vv * a
+            D += s2[:, None, None]
+            r = self._s - a * m
+            self._theta = m + t * (t * r / D + e * np.sqrt(s2[:, None, None] / D))
+        else:
+            A = self._gA[0].reshape(C, N, P)
+            M = vv * A
+            M += 1.0
+            self._theta = m + t * (t * (self._s - A * m) / M + e / np.sqrt(M))
 
     def _scalar_Ab(self, s2):
         """``(A_i, b_i)`` in the group layout of :meth:`_group_Ab` under noise variances ``s2`` (chain,)."""
-        C = self._C
-        N, P = self._s.shape
         if self._data.outcome == "gaussian":
             a = self._sc["a"]
             if self._sigma_free:
@@ -782,44 +814,71 @@ class GibbsSampler:
             return a[None, :, :, None, None], self._s[None, :, :, None]
         return self._gA[0], self._s[None, :, :, None]
 
-    def _update_sigma_scalar(self, terms, base, n_terms) -> None:
-        """:meth:`_update_sigma` for the scalar path: the same two slice updates on the closed form."""
-        scale = self.priors.sigma_scale
+    def _update_sigma_scalar(self, vals, cnt, W, base) -> None:
+        """:meth:`_update_sigma` for the scalar path: the same two slice updates on the closed form.
+
+        ``vals, cnt, W`` are the unit statistics of the random coefficients
+        (:meth:`_scalar_stats`), None when no coefficient varies.
+        """
+        scale2 = self.priors.sigma_scale ** 2
         C, n_obs = self._C, self._n_obs
-        v0 = self._tau[:, self._rnd] ** 2  # (chain, R)
+        rnd = self._rnd
+        v0 = self._tau[:, rnd] ** 2  # (chain, R)
+        # -n log(s) / 2 + base / s + sum_pu [-cnt log(1 + v a / s) / 2 + v W / (2 s (s + v a))]; with
+        # x = log sigma, sum_pu cnt log(1 + v a / s) = sum_pu cnt log(s + v a) - 2 x n_terms
+        n_terms = 0.0 if vals is None else (float(cnt.sum()) if cnt is not None else float(W[0].size))
 
-        def lik(x, s, v):  # x = log sigma (m, chain), s = exp(2 x), v (m, chain, R) or (chain, R)
-            out = -n_obs * x + base / s
-            if terms is not None:  # terms() leaves out -n_terms log(s) / 2 (constant in tau)
-                out = out + np.sum(terms(v, s), axis=-1) + n_terms * x
-            return out
+        if vals is None:
+            def logf(x):
+                s = np.exp(2.0 * x)
+                return (1.0 - n_obs) * x + base / s - (0.5 / scale2) * s
+        else:
+            lam = v0[..., None] * vals  # (chain, R, units)
+            hw = (0.5 * v0)[..., None] * W
 
-        def logf(x):
-            s = np.exp(2.0 * x)
-            return lik(x, s, v0) - 0.5 * s / scale**2 + x
+            def logf(x):
+                s = np.exp(2.0 * x)
+                D = lam + s[..., None, None]
+                q = (hw / D).sum(axis=(-2, -1))
+                np.log(D, out=D)
+                if cnt is not None:
+                    D *= cnt
+                return ((1.0 - n_obs + n_terms) * x + (base + q) / s - 0.5 * D.sum(axis=(-2, -1))
+                        - (0.5 / scale2) * s)
 
         x, k = gm.slice_step_vec(np.log(self._sigma), logf, self._rngs, width=min(1.0, 3.0 / math.sqrt(n_obs + 1)))
         self._count(k)
         sigma = np.exp(x)
-        if terms is None:
+        if vals is None:
             self._sigma = sigma
             return
         s0 = sigma**2
         prior_var = self._log_prior_var
+        hW = 0.5 * W
 
         def logf_ridge(t):  # t (m, chain): variances v0 - t and s0 + t
             v, s = v0 - t[..., None], s0 + t
             ok = np.all(v > 0, axis=-1) & (s > 0)
-            v, s = np.where(ok[..., None], v, 1.0), np.where(ok, s, 1.0)
-            out = (lik(0.5 * np.log(s), s, v) - 0.5 * s / scale**2 - 0.5 * np.log(s)
-                   + np.sum(prior_var(v) - 0.5 * np.log(v), axis=-1))
-            return np.where(ok, out, -np.inf)
+            fine = bool(ok.all())
+            if not fine:
+                v, s = np.where(ok[..., None], v, 1.0), np.where(ok, s, 1.0)
+            D = v[..., None] * vals
+            D += s[..., None, None]
+            q = (v * (hW / D).sum(axis=-1)).sum(axis=-1)
+            np.log(D, out=D)
+            if cnt is not None:
+                D *= cnt
+            ls = np.log(s)
+            # log-likelihood at x = log(s) / 2, the prior of sigma and the Jacobian of the variance coordinates
+            out = ((n_terms - n_obs - 1.0) * 0.5 * ls + (base + q) / s - 0.5 * D.sum(axis=(-2, -1))
+                   - (0.5 / scale2) * s + np.sum(prior_var(v) - 0.5 * np.log(v), axis=-1))
+            return out if fine else np.where(ok, out, -np.inf)
 
         width = 0.5 * np.mean(v0 + s0[:, None], axis=1)
         t, k = gm.slice_step_vec(np.zeros(C), logf_ridge, self._rngs, width=width)
         self._count(k)
         tau = self._tau.copy()
-        tau[:, self._rnd] = np.sqrt(v0 - t[:, None])
+        tau[:, rnd] = np.sqrt(v0 - t[:, None])
         self._tau = tau
         self._sigma = np.sqrt(s0 + t)
 
