@@ -431,7 +431,11 @@ def population_effects(
     ``covariates`` (``0``, the reference participant, when none are given),
     and the arm effects in ``context`` follow from the design rows. With a
     full covariance (a posterior ``corr`` over some or all coefficients),
-    ``z`` is correlated: ``Sigma = diag(tau) R diag(tau)``.
+    ``z`` is correlated: ``Sigma = diag(tau) R diag(tau)``. Under the mixture
+    population model (a posterior with ``weight (component)`` and
+    ``component_mean (component, coef)``, :mod:`poolbandit.models.mixture`)
+    each new participant first draws its component ``c ~ Categorical(pi_s)``
+    and ``beta_s`` is replaced by that component's mean ``mu_{s,c}``.
 
     Parameters
     ----------
@@ -467,7 +471,10 @@ def population_effects(
     if "corr" in post:
         z = np.einsum("cdpq,cdmq->cdmp", _full_correlation(post), z)
     dev = tau[:, :, None, :] * z
-    theta = beta[:, :, None, :] + dev
+    if "weight" in post and "component_mean" in post:
+        theta = _component_means(post, rng, n_new) + dev
+    else:
+        theta = beta[:, :, None, :] + dev
     if "gamma" in post and covariates is not None:
         w_obs = np.asarray(covariates, dtype=float)
         gamma = post["gamma"].transpose("chain", "draw", ...).to_numpy()  # (c, d, P, Q)
@@ -487,6 +494,16 @@ def population_effects(
                 "participant": [f"new{j + 1}" for j in range(n_new)], "arm": list(arms)},
         name="effect",
     )
+
+
+def _component_means(post, rng: np.random.Generator, n_new: int) -> np.ndarray:
+    """Each new participant's component mean (c, d, m, P), its component drawn from the draw's weights."""
+    weight = post["weight"].transpose("chain", "draw", "component").to_numpy()  # (c, d, C)
+    mu = post["component_mean"].transpose("chain", "draw", "component", "coef").to_numpy()  # (c, d, C, P)
+    cdf = np.cumsum(weight, axis=-1)
+    u = rng.random(weight.shape[:2] + (n_new,)) * cdf[..., -1:]
+    comp = np.minimum((u[..., None] > cdf[:, :, None, :]).sum(axis=-1), weight.shape[-1] - 1)  # (c, d, m)
+    return np.take_along_axis(mu, comp[..., None], axis=2)
 
 
 def _full_correlation(post) -> np.ndarray:

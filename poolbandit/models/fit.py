@@ -26,7 +26,8 @@ if TYPE_CHECKING:  # pragma: no cover
 __all__ = ["fit", "ENGINES"]
 
 #: Engine names and what they run.
-ENGINES = {"fast": "partially collapsed Gibbs sampler (poolbandit.models.gibbs)",
+ENGINES = {"fast": "partially collapsed Gibbs sampler (poolbandit.models.gibbs; mixture population: "
+                   "poolbandit.models.mixture)",
            "full": "PyMC NUTS (poolbandit.models.pymc_engine)"}
 
 
@@ -81,7 +82,11 @@ def fit(
         ``posterior`` with ``beta (coef)``, ``gamma (coef, covariate)`` when
         there are covariates, ``tau (coef)``, ``sigma ()`` for a gaussian
         outcome with unknown noise, ``theta (participant, coef)``; the
-        engine's name in ``posterior.attrs["engine"]``.
+        engine's name in ``posterior.attrs["engine"]``. With ``priors.population
+        = "mixture"`` (a finite mixture of normal populations,
+        :mod:`poolbandit.models.mixture`) also ``weight (component)`` and
+        ``component_mean (component, coef)``, and ``beta`` is the population
+        mean ``sum_c weight_c component_mean_c``.
 
     Raises
     ------
@@ -113,9 +118,13 @@ def fit(
         priors = design.priors if design is not None else PriorSpec()
     rng = as_generator(rng)
     if engine == "fast":
+        kwargs = {} if tune is None else {"tune": tune}
+        if priors.population == "mixture":
+            from .mixture import sample_mixture
+
+            return sample_mixture(data, priors, chains=chains, draws=draws, rng=rng, progress=progress, **kwargs)
         from .gibbs import sample_fast
 
-        kwargs = {} if tune is None else {"tune": tune}
         return sample_fast(data, priors, chains=chains, draws=draws, rng=rng, progress=progress, **kwargs)
     from .pymc_engine import sample_full
 

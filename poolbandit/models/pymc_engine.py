@@ -186,6 +186,9 @@ def sample_full(
     priors = PriorSpec() if priors is None else priors
     _check_options(chains, draws, tune, target_accept)
     _check_data(data)
+    if priors.population == "mixture" and not np.all(np.asarray(data.random, dtype=bool)):
+        raise ValueError("the mixture population model needs every coefficient to vary between participants "
+                         "(data.random all true)")
     rng = as_generator(rng)
     kwargs = dict(sample_kwargs or {})
     own = sorted(set(kwargs) & set(_OWN_KEYS))
@@ -287,6 +290,9 @@ def _build_model(data: ModelData, priors: PriorSpec):
     import pymc as pm
     import pytensor.tensor as pt
 
+    if priors.population == "mixture":
+        return _build_mixture_model(data, priors)
+
     n_part, n_coef, n_cov = data.n_participants, data.n_coef, len(data.covariates)
     rand = np.flatnonzero(data.random)
     n_rand = len(rand)
@@ -341,15 +347,87 @@ def _build_model(data: ModelData, priors: PriorSpec):
         if priors.covariance == "full":
             var_names.append("corr")
         theta = pm.Deterministic("theta", theta, dims=("participant", "coef"))
-        eta = (X * theta[group]).sum(axis=1)
-        if data.outcome == "bernoulli":
-            pm.Bernoulli("y_obs", logit_p=eta, observed=y)
-        elif data.obs_sd is not None:
-            pm.Normal("y_obs", eta, pm.Data("obs_sd", values["obs_sd"]), observed=y)
+        _outcome(data, priors, values, X, group, y, theta, var_names)
+    return model, var_names
+
+
+def _outcome(data: ModelData, priors: PriorSpec, values, X, group, y, theta, var_names: list[str]) -> None:
+    """The likelihood of the outcomes given every participant's ``theta`` (inside the model context)."""
+    import pymc as pm
+
+    eta = (X * theta[group]).sum(axis=1)
+    if data.outcome == "bernoulli":
+        pm.Bernoulli("y_obs", logit_p=eta, observed=y)
+    elif data.obs_sd is not None:
+        pm.Normal("y_obs", eta, pm.Data("obs_sd", values["obs_sd"]), observed=y)
+    else:
+        sigma = pm.HalfNormal("sigma", priors.sigma_scale)
+        pm.Normal("y_obs", eta, sigma, observed=y)
+        var_names.append("sigma")
+
+
+def _build_mixture_model(data: ModelData, priors: PriorSpec):
+    """The mixture population model (:mod:`poolbandit.models.mixture`) in PyMC, labels marginalised.
+
+    ``theta`` is centred (a flat variable whose density is the potential
+    ``sum_i log sum_c pi_c N(theta_i; mu_c + Gamma w_i, Sigma)``); the
+    component means are non-centred around their centre, ``mu_c = mu_0 +
+    omega * u_c`` with ``u_c ~ N(0, I)``. No ordering constraint is imposed:
+    chains may settle on different labellings, which changes nothing in
+    ``theta``, ``beta``, ``tau``, ``sigma`` or ``gamma``.
+    """
+    import pymc as pm
+    import pytensor.tensor as pt
+    from pytensor.tensor.slinalg import solve_triangular
+
+    n_part, n_coef, n_cov = data.n_participants, data.n_coef, len(data.covariates)
+    K = int(priors.components)
+    full = priors.covariance == "full" and n_coef >= 2
+    coords = {"coef": list(data.coef), "participant": list(data.participants), "component": list(range(K))}
+    if n_cov:
+        coords["covariate"] = list(data.covariates)
+    if priors.covariance == "full":
+        coords["coef_"] = list(data.coef)
+    values = _data_values(data)
+    var_names = ["beta", "tau", "theta", "weight", "component_mean", "component_center", "component_sd"]
+    with pm.Model(coords=coords) as model:
+        X = pm.Data("X", values["X"])
+        group = pm.Data("group", values["group"])
+        y = pm.Data("y", values["y"])
+        weight = pm.Dirichlet("weight", a=np.full(K, float(priors.mixture_concentration)), dims="component")
+        center = pm.Normal("component_center", 0.0, priors.beta_sd, dims="coef")
+        spread = _tau_prior(priors, "component_sd", dims="coef")
+        raw = pm.Normal("component_raw", 0.0, 1.0, dims=("component", "coef"))
+        mu = pm.Deterministic("component_mean", center[None, :] + spread[None, :] * raw, dims=("component", "coef"))
+        pm.Deterministic("beta", (weight[:, None] * mu).sum(axis=0), dims="coef")
+        theta = pm.Flat("theta", dims=("participant", "coef"))
+        dev = theta
+        if n_cov:
+            W = pm.Data("W", values["W"])
+            gamma = pm.Normal("gamma", 0.0, priors.gamma_sd, dims=("coef", "covariate"))
+            dev = dev - (W[:, None, :] * gamma[None, :, :]).sum(axis=-1)
+            var_names.insert(1, "gamma")
+        d = dev[:, None, :] - mu[None, :, :]  # (N, K, P)
+        if full:
+            chol, corr, stds = pm.LKJCholeskyCov(
+                "chol_cov", n=n_coef, eta=priors.lkj_eta, compute_corr=True, store_in_trace=False,
+                sd_dist=_tau_prior(priors, None, shape=n_coef),
+            )
+            pm.Deterministic("corr", corr, dims=("coef", "coef_"))
+            pm.Deterministic("tau", stds, dims="coef")
+            r = solve_triangular(chol, d.reshape((n_part * K, n_coef)).T, lower=True).T.reshape((n_part, K, n_coef))
+            log_det = pt.log(pt.diag(chol)).sum()
         else:
-            sigma = pm.HalfNormal("sigma", priors.sigma_scale)
-            pm.Normal("y_obs", eta, sigma, observed=y)
-            var_names.append("sigma")
+            tau = _tau_prior(priors, "tau", dims="coef")
+            r = d / tau[None, None, :]
+            log_det = pt.log(tau).sum()
+            if priors.covariance == "full":
+                pm.Deterministic("corr", pt.eye(n_coef), dims=("coef", "coef_"))
+        if priors.covariance == "full":
+            var_names.append("corr")
+        log_comp = pt.log(weight)[None, :] - 0.5 * (r * r).sum(axis=-1) - log_det  # (N, K), constants dropped
+        pm.Potential("theta_mixture", pm.math.logsumexp(log_comp, axis=1).sum())
+        _outcome(data, priors, values, X, group, y, theta, var_names)
     return model, var_names
 
 
@@ -368,8 +446,10 @@ def _relabel(idata, data: ModelData, priors: PriorSpec):
                                                   coords={"obs": np.arange(len(data.y))})})
     idata.posterior.attrs.update({
         "engine": "full", "sampler": "pymc NUTS", "outcome": data.outcome,
-        "covariance": priors.covariance, "tau_family": priors.tau_family,
+        "covariance": priors.covariance, "tau_family": priors.tau_family, "population": priors.population,
     })
+    if priors.population == "mixture":
+        idata.posterior.attrs["components"] = int(priors.components)
     return idata
 
 

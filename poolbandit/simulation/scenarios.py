@@ -250,6 +250,7 @@ def latent_types_scenario(
     *,
     size: int = 80,
     population: str = "types",
+    population_model: str = "normal",
     title: str = "",
     seed: int | None = None,
     source: str | None = None,
@@ -266,7 +267,10 @@ def latent_types_scenario(
     arm means (2.5, 2.4, 2.4) and heterogeneity 0.3 per arm, which the model
     describes exactly.
 
-    Priors: ``beta_sd = 3`` (other priors at their defaults). Policies:
+    Priors: ``beta_sd = 3`` (other priors at their defaults); with
+    ``population_model="mixture"`` also ``population = "mixture"`` and
+    ``components = 4`` (the fitted population is a mixture of four normal
+    distributions; pooled Thompson sampling keeps the normal model). Policies:
     ``pooled`` (pooled Thompson sampling, clip [0.05, 0.9], 3 forced
     exploration decisions) and ``solo`` (each participant alone: normal
     model, prior N(2.4, 1), known noise sd 0.8). Categories: "drill-leaning",
@@ -278,6 +282,9 @@ def latent_types_scenario(
     size : int
         Participants.
     population : {"types", "normal"}
+        The simulated truth.
+    population_model : {"normal", "mixture"}
+        The population model of the fit (``[priors] population``).
     title : str
         ``[study] title``.
     seed : int, optional
@@ -296,6 +303,11 @@ def latent_types_scenario(
     if seed is not None:
         study["seed"] = int(seed)
     pop = [f"size = {int(size)}"]
+    priors: dict[str, Any] = {"beta_sd": 3.0}
+    if population_model == "mixture":
+        priors |= {"population": "mixture", "components": 4}
+    elif population_model != "normal":
+        raise ValueError(f"population_model must be 'normal' or 'mixture', got {population_model!r}")
     if population == "types":
         pop.append("arm_sd = [0.25, 0.25, 0.25]")
     elif population == "normal":
@@ -310,7 +322,7 @@ def latent_types_scenario(
         "solo": {"kind": "thompson", "model": "normal", "prior_mean": 2.4, "prior_sd": 1.0, "noise_sd": 0.8},
     }
     text = "\n".join([
-        _table("study", study), "[population]", *pop, *types, _table("priors", {"beta_sd": 3.0}),
+        _table("study", study), "[population]", *pop, *types, _table("priors", priors),
         _policies(policies), preference_categories(ARMS, margin=0.2, name="{arm}-leaning"),
     ]) + "\n"
     return parse_design(text, source=source)
