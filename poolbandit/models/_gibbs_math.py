@@ -337,7 +337,8 @@ def slice_step(x0: float, logf: Callable[[float], float], rng: np.random.Generat
 
 
 def slice_step_vec(x0: np.ndarray, logf: Callable[[np.ndarray], np.ndarray], rng, *,
-                   width=1.0, max_steps: int = 32, ahead: int = 3, spec: int = 4) -> tuple[np.ndarray, np.ndarray]:
+                   width=1.0, max_steps: int = 32, ahead: int = 3, spec: int = 4,
+                   first: int | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Independent slice-sampling updates of ``B`` scalars, run in lockstep.
 
     Each scalar ``x0[b]`` gets the update of :func:`slice_step` (stepping out
@@ -347,10 +348,11 @@ def slice_step_vec(x0: np.ndarray, logf: Callable[[np.ndarray], np.ndarray], rng
     evaluated under the density of scalar ``b``. Several points go into each
     call of ``logf`` to cut call overhead: the first call evaluates the start,
     the two ends of the first interval, ``ahead`` further stepping-out
-    positions on each side, and the first ``spec`` shrinkage candidates as
-    they would be if the stepping out stops at once (used only when it
-    does); later calls evaluate ``spec`` shrinkage candidates each (every one
-    assuming the ones before it are rejected). Evaluating a point early never
+    positions on each side, and the ``first`` (default ``spec``) shrinkage
+    candidates of the first round as they would be if the stepping out stops
+    at once (used only when it does); later calls evaluate a round of
+    shrinkage candidates each (``first`` in the first round, ``spec`` in the
+    others; every candidate assumes the ones before it are rejected). Evaluating a point early never
     changes which point is accepted, and a speculative candidate that is not
     used has not influenced anything (its uniforms then serve the first real
     shrinkage round), so each scalar follows exactly the slice sampler's
@@ -360,7 +362,7 @@ def slice_step_vec(x0: np.ndarray, logf: Callable[[np.ndarray], np.ndarray], rng
 
     ``rng`` is a generator, or a list of generators (independent chains):
     then the scalars are split into that many equal consecutive parts and
-    each part draws from its own generator (``3 + spec`` uniforms per scalar
+    each part draws from its own generator (``3 + first`` uniforms per scalar
     up front, ``spec`` more per scalar of a part whenever one of its scalars
     needs another shrinkage round), so a part's draws never depend on the
     other parts. ``width`` is a number or one per scalar. Returns the new
@@ -372,13 +374,21 @@ def slice_step_vec(x0: np.ndarray, logf: Callable[[np.ndarray], np.ndarray], rng
     B = xa.shape[0]
     nr = len(rngs)
     per = B // nr
-    rows = 3 + spec
-    U = rngs[0].random((B, rows)) if nr == 1 else np.concatenate([r.random((per, rows)) for r in rngs])
-    wa = np.broadcast_to(np.asarray(width, dtype=float), (B,))
+    first = spec if first is None else first
+    rows = 3 + first
+    U = np.empty((B, rows))
+    for i, r in enumerate(rngs):
+        r.random(out=U[i * per:(i + 1) * per])
+    if np.ndim(width) == 0:
+        wa = float(width)
+        ws = [wa] * B
+    else:
+        wa = np.asarray(width, dtype=float).reshape(B)
+        ws = wa.tolist()
     K = ahead + 1
     lo_a = xa - wa * U[:, 1]
     steps = np.arange(K, dtype=float)[:, None] * wa
-    xs, Ul, ws, los = xa.tolist(), U.tolist(), wa.tolist(), lo_a.tolist()
+    xs, Ul, los = xa.tolist(), U.tolist(), lo_a.tolist()
     his = [lo + w for lo, w in zip(los, ws)]
     spec_rows = []  # speculative shrinkage candidates of the first interval
     for x, lo, hi, u in zip(xs, los, his, Ul):
@@ -454,11 +464,12 @@ def slice_step_vec(x0: np.ndarray, logf: Callable[[np.ndarray], np.ndarray], rng
     while True:
         need = [b for b in active if cands[b] is None]
         if need:
-            pad = [[x] * spec for x in xs]
+            size = len(us[need[0]])  # first in the first round, spec afterwards
+            pad = [[x] * size for x in xs]
             for b in need:
                 x, lo, hi, u = xs[b], los[b], his[b], us[b]
                 row = pad[b]
-                for j in range(spec):  # candidate j assumes candidates 0..j-1 are rejected
+                for j in range(size):  # candidate j assumes candidates 0..j-1 are rejected
                     c = lo + (hi - lo) * u[j]
                     row[j] = c
                     if c < x:
@@ -472,13 +483,13 @@ def slice_step_vec(x0: np.ndarray, logf: Callable[[np.ndarray], np.ndarray], rng
         still = []
         for b in active:
             level, row, g, x = levels[b], cands[b], vals[b], xs[b]
-            for j in range(spec):
+            for j in range(len(row)):
                 if g[j] > level:
                     out[b] = row[j]
                     n[b] += j + 1
                     break
             else:
-                n[b] += spec
+                n[b] += len(row)
                 lo, hi = los[b], his[b]
                 for c in row:
                     if c < x:

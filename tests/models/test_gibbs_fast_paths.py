@@ -16,10 +16,10 @@ from poolbandit.spec import PriorSpec
 from _reference import SCHOOLS_SD, SCHOOLS_Y
 
 
-def _arm_data(outcome: str, **kwargs) -> ModelData:
-    """30 participants, 3 arms (one-hot rows: scalar blocks), 200 seeded observations."""
+def _arm_data(outcome: str, n: int = 200, **kwargs) -> ModelData:
+    """30 participants, 3 arms (one-hot rows: scalar blocks), ``n`` seeded observations."""
     rng = np.random.default_rng(0)
-    N, P, n = 30, 3, 200
+    N, P = 30, 3
     g, arm = rng.integers(0, N, n), rng.integers(0, P, n)
     X = np.eye(P)[arm]
     W = rng.normal(size=(N, 2))
@@ -39,6 +39,7 @@ def _arm_data(outcome: str, **kwargs) -> ModelData:
 _CASES = {
     "gaussian": lambda: _arm_data("gaussian"),
     "gaussian-covariates": lambda: _arm_data("gaussian", covariates=True),
+    "gaussian-replicated": lambda: _arm_data("gaussian", n=900),  # 10 per cell: no ridge move
     "gaussian-one-fixed": lambda: _arm_data("gaussian", random=[True, False, True]),
     "gaussian-none-random": lambda: _arm_data("gaussian", random=[False, False, False]),
     "gaussian-known-noise": lambda: _arm_data("gaussian", obs_sd=True),
@@ -60,6 +61,10 @@ def test_scalar_path_equals_general_path(case, family, monkeypatch):
     they differ by a few ulps, far below any slice acceptance margin)."""
     data = _CASES[case]()
     priors = PriorSpec(tau_family=family, tau_scale=1.0 if family == "half-normal" else 2.0)
+    if case == "gaussian-replicated":
+        assert not GibbsSampler(data, priors, rng=0)._ridge
+    elif case in ("gaussian", "gaussian-covariates", "gaussian-one-fixed"):  # about 2 observations per cell
+        assert GibbsSampler(data, priors, rng=0)._ridge
     draws = []
     for scalar in (True, False):
         monkeypatch.setattr(gibbs, "_SCALAR_PATH", scalar)
