@@ -163,6 +163,30 @@ def test_warm_start_adds_participants_with_labels():
     np.testing.assert_allclose(s.weights.sum(), 1.0)
 
 
+@pytest.mark.parametrize("outcome", ["gaussian", "bernoulli"])
+def test_scalar_path_equals_general_path(monkeypatch, outcome):
+    """The base class's closed forms for scalar coefficient blocks (diagonal covariance) must serve the
+    mixture too (per-participant prior means m_i = mu_{z_i}): on the same streams, 25 sweeps give the same
+    labels, weights, component means, scales and theta as the general block algebra (as
+    tests/models/test_gibbs_fast_paths.py checks for the normal model). Tolerance 1e-9: rounding only."""
+    from poolbandit._random import spawn
+    from poolbandit.models import gibbs
+
+    design = reference_study(outcome, size=24, horizon=12)
+    log = simulate(design, "control", 5).log
+    data = ModelData.from_log(log[np.isfinite(log[design.study.reward])], design)
+    priors = replace(design.priors, population="mixture", components=3)
+    draws = []
+    for scalar in (True, False):
+        monkeypatch.setattr(gibbs, "_SCALAR_PATH", scalar)
+        s = MixtureGibbsSampler._chains(data, priors, spawn(3, 2), "dispersed")
+        assert s._scalar is scalar
+        s.sweep(25)
+        draws.append((s._z, s._pi, s._mu, s._spread, s._tau, s._theta, s._beta))
+    for fast, general in zip(*draws):
+        np.testing.assert_allclose(fast, general, rtol=0, atol=1e-9)
+
+
 def test_mixture_needs_every_coefficient_random():
     """A coefficient shared by everyone cannot follow a mixture density: both engines refuse, naming it."""
     data = replace(_two_type_study(n=6, t=4), random=np.array([True, False]))
