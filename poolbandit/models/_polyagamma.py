@@ -17,7 +17,7 @@ from __future__ import annotations
 import numpy as np
 from polyagamma import random_polyagamma
 
-__all__ = ["draw_pg", "pg_mean", "pg_var"]
+__all__ = ["draw_pg", "draw_pg_counts", "pg_mean", "pg_var"]
 
 
 def draw_pg(h: np.ndarray | float, c: np.ndarray, rng: np.random.Generator) -> np.ndarray:
@@ -33,6 +33,17 @@ def draw_pg(h: np.ndarray | float, c: np.ndarray, rng: np.random.Generator) -> n
     else:
         out = random_polyagamma(hh, c, random_state=rng)
     return np.asarray(out, dtype=float).reshape(np.broadcast(hh, c).shape)
+
+
+def draw_pg_counts(h: np.ndarray, c: np.ndarray, rng: np.random.Generator, out: np.ndarray) -> np.ndarray:
+    """Draw ``PG(h, c)`` into ``out`` for positive integer counts ``h`` (arrays of one shape; no checks).
+
+    The hot path of the bernoulli engine: Devroye's exact sampler as in
+    :func:`draw_pg`, the same variates for the same generator state, without
+    the argument handling.
+    """
+    random_polyagamma(h, c, method="devroye", random_state=rng, out=out)
+    return out
 
 
 def pg_mean(h: np.ndarray | float, c: np.ndarray | float) -> np.ndarray:

@@ -97,7 +97,7 @@ from scipy.sparse.csgraph import connected_components
 from .._random import RngLike, as_generator, spawn
 from ..spec import PriorSpec
 from . import _gibbs_math as gm
-from ._polyagamma import draw_pg
+from ._polyagamma import draw_pg, draw_pg_counts
 from .data import ModelData
 
 __all__ = ["GibbsState", "GibbsSampler", "sample_fast"]
@@ -577,7 +577,9 @@ class GibbsSampler:
             psi = self._theta.reshape(C, N * P)[:, self._cell_flat]
             if self._cell_val is not None:
                 psi = psi * self._cell_val
-            self._omegas = np.stack([draw_pg(h, p, r) for p, r in zip(psi, self._rngs)])  # (chain, cells)
+            self._omegas = np.empty(psi.shape)  # (chain, cells)
+            for c, r in enumerate(self._rngs):
+                draw_pg_counts(h, psi[c], r, self._omegas[c])
             if self._cell_sum is None:
                 A = np.zeros((C, N * P))
                 A[:, self._cell_flat] = self._omegas if self._cell_val is None else self._omegas * self._cell_val**2
@@ -781,8 +783,11 @@ class GibbsSampler:
             cnt_r = cnt if (allr or cnt is None) else cnt[rnd]
             W_r = W if allr else W[:, rnd]
             # 2a. every log tau_p (chain-major scalars); width 1, see _update_tau_diagonal
-            a_s = vals_r / s2[:, None, None]  # (chain, R, units): 1 + v a / s2 per unit
-            hw = W_r * (0.5 / s2**2)[:, None, None]
+            if self._sigma_free:
+                a_s = vals_r / s2[:, None, None]  # (chain, R, units): 1 + v a / s2 per unit
+                hw = W_r * (0.5 / s2**2)[:, None, None]
+            else:
+                a_s, hw = vals_r, 0.5 * W_r
             prior_var = self._log_prior_var
 
             def logf_tau(x):
