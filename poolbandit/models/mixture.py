@@ -38,8 +38,11 @@ times the posterior width per coefficient (``log`` about ``-4`` per
 coefficient with 20 members), so the posterior merges types that the data
 do separate; the centre and spread put the component means on the scale of
 the differences between types. Measured in
-``benchmarks/classification_calibration.py`` (fast engine, 20 replicates):
-see the report of issue #4.
+``benchmarks/classification_calibration.py`` (fast engine, 20 replicates
+of the latent-types scenario, four components, concentration 1): reliability
+0.0207 and Brier unpooled - pooled +0.0005 (SE 0.0037) with independent
+``N(0, 3^2)`` component means; 0.0187 and +0.0050 (SE 0.0034) with the
+common centre (the normal population model: 0.0355 and -0.0103).
 
 Sampler
 -------
