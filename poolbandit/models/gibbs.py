@@ -33,7 +33,10 @@ Per sweep (all steps vectorised over participants):
 1. bernoulli only: ``omega_it ~ PG(1, x_it' theta_i)`` (Polson, Scott and
    Windle [2]_), which turns the likelihood of ``theta_i`` into a Gaussian one
    with precision ``X_i' Omega_i X_i`` and linear term ``X_i' kappa_i``,
-   ``kappa = y - 1/2``;
+   ``kappa = y - 1/2``; the observations of a participant that share a
+   design row share ``x'theta_i`` and only the sum of their variables enters,
+   so one ``PG(n_u, x_u'theta_i)`` is drawn per such cell of ``n_u``
+   observations (the law of that sum);
 2. each ``log tau_p`` (and each correlation parameter, and ``log sigma``) by
    univariate slice sampling (Neal [4]_) on its conditional **with every
    theta_i integrated out**: given the population mean ``m_i = beta + Gamma
@@ -45,7 +48,10 @@ Per sweep (all steps vectorised over participants):
    variances ``tau_p^2 - t, sigma^2 + t`` when every random coefficient is its
    own block (the ridge ``tau_p^2 + sigma^2 = const`` that the data identify
    when participants have one or two observations each), else ``log tau_p -
-   t, log sigma + t``;
+   t, log sigma + t``; this move runs while some random coefficient has fewer
+   than ``_RIDGE_REPLICATION`` (5) observations per participant on average,
+   and is left out once the noise is identified within participants (a choice
+   made from the data alone, at ``set_data``);
 3. ``(beta, Gamma)`` jointly from their Gaussian conditional, again with
    ``theta`` integrated out;
 4. every ``theta_i`` from its Gaussian full conditional.
@@ -64,6 +70,15 @@ blocks of equal size are updated in lockstep (they are independent given
 ``beta, Gamma, sigma``); the noise scale's evaluations use eigen-terms of each
 block computed once per sweep. :func:`sample_fast` runs its chains in lockstep
 too (one array operation serves all chains; each chain keeps its own stream).
+
+When every coefficient is its own block and the covariance is diagonal (arm
+levels without context features, the common case), the sweep takes closed
+forms instead (``GibbsSampler._sweep_scalar``): the same updates in the same
+order on the same random numbers, with each slice evaluation a few array
+operations over "units" (for a gaussian outcome, the participants with equal
+``(X_i'X_i)_pp`` pooled), ``beta`` drawn elementwise without covariates, and
+the lockstep slice steps evaluating several points per call
+(:func:`._gibbs_math.slice_step_vec`).
 
 References
 ----------
@@ -328,7 +343,8 @@ class GibbsSampler:
             s = np.asarray(G @ (Xn * (w * yn)[:, None])).reshape(N, P)
             pattern = (outer != 0).any(axis=0).reshape(P, P) if n > n0 else np.zeros((P, P), bool)
             yy = float(np.sum(w * yn * yn))
-            counts = np.asarray(G @ (Xn != 0).astype(float)).reshape(N, P)  # observations per participant and coefficient
+            # observations per participant and coefficient
+            counts = np.asarray(G @ (Xn != 0).astype(float)).reshape(N, P)
             if old is not None:
                 N0 = old.n_participants
                 S[:N0] += self._S
