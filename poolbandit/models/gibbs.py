@@ -805,6 +805,9 @@ class GibbsSampler:
             else:
                 a_s, hw = vals_r, 0.5 * W_r
             prior_var = self._log_prior_var
+            half_cnt = None if cnt_r is None else 0.5 * cnt_r
+            # a half-normal prior adds -v / (2 tau_scale^2): folded into the coefficient of v
+            c_hn = 0.5 / self.priors.tau_scale**2 if self.priors.tau_family == "half-normal" else None
 
             def logf_tau(x):
                 xx = x.reshape(x.shape[0], C, R)
@@ -813,9 +816,16 @@ class GibbsSampler:
                 D += 1.0
                 q = (hw / D).sum(axis=-1)
                 np.log(D, out=D)
-                if cnt_r is not None:
-                    D *= cnt_r
-                return (v * q - 0.5 * D.sum(axis=-1) + prior_var(v) + xx).reshape(x.shape)
+                if half_cnt is None:
+                    D *= 0.5
+                else:
+                    D *= half_cnt
+                if c_hn is None:
+                    out = v * q - D.sum(axis=-1) + prior_var(v) + xx
+                else:
+                    q -= c_hn
+                    out = v * q - D.sum(axis=-1) + xx
+                return out.reshape(x.shape)
 
             x, k = gm.slice_step_vec(np.log(self._tau[:, rnd]).ravel(), logf_tau, self._rngs, **self._slice_tau)
             self._count(k)
