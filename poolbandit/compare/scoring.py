@@ -198,14 +198,17 @@ class ClassificationScorer:
 
 
 def _fast_fit_effects(result: SimulationResult, draws: int, rng: np.random.Generator):
-    """Arm effects from the hierarchical model fitted to the log with the fast engine (one short chain)."""
+    """Arm effects from the hierarchical model (the design's population model) fitted to the log with the fast
+    engine (one short chain)."""
     from ..models.data import ModelData
     from ..models.effects import arm_effects
     from ..models.gibbs import sample_fast
+    from ..models.mixture import sample_mixture
 
     design = result.population.design
     data = ModelData.from_log(result.log, design, participants=list(result.population.ids))
-    idata = sample_fast(data, design.priors, chains=1, draws=draws, tune=max(50, draws // 2), rng=rng)
+    sampler = sample_mixture if design.priors.population == "mixture" else sample_fast
+    idata = sampler(data, design.priors, chains=1, draws=draws, tune=max(50, draws // 2), rng=rng)
     scale = "probability" if design.study.outcome == "bernoulli" else "linear"
     return arm_effects(idata, design.arms, design.features, scale=scale)
 

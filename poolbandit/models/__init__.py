@@ -12,9 +12,11 @@ from .data import ModelData
 from .effects import arm_effects, context_vector
 from .fit import fit
 from .gibbs import GibbsSampler, GibbsState, sample_fast
+from .mixture import MixtureGibbsSampler, sample_mixture
 
 __all__ = [
-    "ModelData", "GibbsSampler", "GibbsState", "sample_fast", "sample_full", "fit", "diagnostics_table",
+    "ModelData", "GibbsSampler", "GibbsState", "sample_fast", "MixtureGibbsSampler", "sample_mixture", "sample_full",
+    "fit", "diagnostics_table",
     "arm_effects", "context_vector",
 ]
 

@@ -203,3 +203,30 @@ def test_scores_are_sane(one_worker):
     # the curve's end equals the replicate regret averaged (regret counts every decision)
     for name in s.index:
         assert last[name] == pytest.approx(s.loc[name, "regret"], rel=1e-9)
+
+
+def test_fast_classification_fit_follows_the_design_population_model(monkeypatch):
+    """The comparison's classification fit (fit="fast") uses the design's population model: with
+    population = "mixture" it is the mixture sampler (poolbandit.models.mixture), whose posterior
+    carries the mixture weights; with the default normal population, the normal model's sampler."""
+    from poolbandit.compare import scoring
+    from poolbandit.models import mixture
+    from poolbandit.simulation import simulate
+
+    text = (Path(__file__).with_name("small.toml").read_text(encoding="utf-8")
+            + '\n[priors]\npopulation = "mixture"\ncomponents = 3\n')
+    calls = []
+    real = mixture.sample_mixture
+
+    def spy(*args, **kwargs):
+        idata = real(*args, **kwargs)
+        calls.append(idata)
+        return idata
+
+    monkeypatch.setattr(mixture, "sample_mixture", spy)
+    for design, expect in ((parse_design(text), 1), (load_design(Path(__file__).with_name("small.toml")), 1)):
+        result = simulate(design, "control", 3)
+        effect = scoring._fast_fit_effects(result, 20, np.random.default_rng(4))
+        assert effect.sizes["participant"] == design.population.size
+        assert len(calls) == expect
+    assert "weight" in calls[0].posterior
