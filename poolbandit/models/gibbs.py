@@ -257,6 +257,21 @@ class GibbsSampler:
     own random stream), which shares the cost of every array operation.
     """
 
+    #: label of the progress bar of :func:`sample_fast`
+    _PROGRESS = "fast engine"
+
+    def _extra_draws(self) -> dict:
+        """Posterior variables of a subclass beyond the normal model's: name -> (value (chain, ...), dims)."""
+        return {}
+
+    def _extra_coords(self) -> dict:
+        """Coordinates of :meth:`_extra_draws`'s dimensions."""
+        return {}
+
+    def _extra_attrs(self) -> dict:
+        """Attributes of the InferenceData groups that describe a subclass's model."""
+        return {}
+
     def __init__(self, data: ModelData, priors: PriorSpec, *, rng: RngLike = None,
                  init: Literal["prior", "dispersed"] = "prior"):
         self._setup(data, priors, [as_generator(rng)], init)
@@ -1247,7 +1262,7 @@ class GibbsSampler:
 # ----------------------------------------------------------------------
 def sample_fast(data: ModelData, priors: PriorSpec, *, chains: int = 4, draws: int = 1000, tune: int = 500,
                 thin: int = 1, rng: RngLike = None, progress: bool = False,
-                init: Literal["prior", "dispersed"] = "dispersed"):
+                init: Literal["prior", "dispersed"] = "dispersed", sampler: type | None = None):
     """Sample the posterior of the hierarchical model with the fast engine.
 
     Parameters
@@ -1267,6 +1282,11 @@ def sample_fast(data: ModelData, priors: PriorSpec, *, chains: int = 4, draws: i
         Show a tqdm bar over chains.
     init : {"dispersed", "prior"}, default="dispersed"
         Starting point of each chain (see :class:`GibbsSampler`).
+    sampler : type, optional
+        The sampler class, :class:`GibbsSampler` (default) or a subclass such
+        as :class:`~poolbandit.models.mixture.MixtureGibbsSampler`, whose
+        ``_extra_draws``, ``_extra_coords`` and ``_extra_attrs`` add its own
+        posterior variables, coordinates and attributes.
 
     Returns
     -------
@@ -1274,18 +1294,23 @@ def sample_fast(data: ModelData, priors: PriorSpec, *, chains: int = 4, draws: i
         ``posterior``: ``beta (coef)``, ``gamma (coef, covariate)`` when there
         are covariates, ``tau (coef)``, ``sigma ()`` for a gaussian outcome
         with unknown noise, ``theta (participant, coef)``, and ``corr (coef,
-        coef_)`` for a full covariance. ``observed_data``: ``y (obs)``.
-        ``sample_stats``: ``n_evals``, the log-density evaluations of the
-        slice steps in the sweep (a cost measure).
+        coef_)`` for a full covariance, plus the sampler's extra variables.
+        ``observed_data``: ``y (obs)``. ``sample_stats``: ``n_evals``, the
+        log-density evaluations of the slice steps in the sweep (a cost
+        measure).
     """
     import arviz as az
 
     if chains < 1 or draws < 1 or tune < 0 or thin < 1:
         raise ValueError(f"need chains >= 1, draws >= 1, tune >= 0, thin >= 1; got {chains}, {draws}, {tune}, {thin}")
+    sampler = GibbsSampler if sampler is None else sampler
     P, Q, N = data.n_coef, len(data.covariates), data.n_participants
     sigma_free = data.outcome == "gaussian" and data.obs_sd is None
     out = {"beta": np.empty((chains, draws, P)), "tau": np.empty((chains, draws, P)),
            "theta": np.empty((chains, draws, N, P))}
+    extra_dims: dict[str, list[str]] = {}
+    extra_coords: dict = {}
+    extra_attrs: dict = {}
     if Q:
         out["gamma"] = np.empty((chains, draws, P, Q))
     if sigma_free:
@@ -1301,15 +1326,21 @@ def sample_fast(data: ModelData, priors: PriorSpec, *, chains: int = 4, draws: i
     if progress:
         from tqdm.auto import tqdm
 
-        iterator = tqdm(runs, desc="fast engine", unit="chain" if not lockstep else "run")
+        iterator = tqdm(runs, desc=sampler._PROGRESS, unit="chain" if not lockstep else "run")
     for cs in iterator:
-        s = GibbsSampler._chains(data, priors, [streams[c] for c in cs], init)
+        s = sampler._chains(data, priors, [streams[c] for c in cs], init)
+        extra_coords, extra_attrs = s._extra_coords(), s._extra_attrs()
         s.sweep(tune)
         for d in range(draws):
             s.sweep(thin)
             out["beta"][cs, d] = s._beta
             out["tau"][cs, d] = s._tau
             out["theta"][cs, d] = s._theta
+            for name, (value, vdims) in s._extra_draws().items():
+                if name not in out:
+                    out[name] = np.empty((chains, draws) + value.shape[1:])
+                    extra_dims[name] = vdims
+                out[name][cs, d] = value
             if Q:
                 out["gamma"][cs, d] = s._gamma
             if sigma_free:
@@ -1318,8 +1349,8 @@ def sample_fast(data: ModelData, priors: PriorSpec, *, chains: int = 4, draws: i
                 out["corr"][cs, d] = s._corr_chol @ np.swapaxes(s._corr_chol, 1, 2)
             n_evals[cs, d] = s._n_evals
     coef = list(data.coef)
-    coords = {"coef": coef, "participant": list(data.participants)}
-    dims = {"beta": ["coef"], "tau": ["coef"], "theta": ["participant", "coef"]}
+    coords = {"coef": coef, "participant": list(data.participants), **extra_coords}
+    dims = {"beta": ["coef"], "tau": ["coef"], "theta": ["participant", "coef"], **extra_dims}
     if Q:
         coords["covariate"] = list(data.covariates)
         dims["gamma"] = ["coef", "covariate"]
@@ -1331,6 +1362,6 @@ def sample_fast(data: ModelData, priors: PriorSpec, *, chains: int = 4, draws: i
     idata = az.from_dict(posterior=out, observed_data={"y": data.y}, sample_stats={"n_evals": n_evals},
                          coords=coords, dims=dims)
     for group in ("posterior", "sample_stats"):
-        idata[group].attrs.update({"engine": "fast", "sampler": "partially collapsed Gibbs",
+        idata[group].attrs.update({"engine": "fast", "sampler": "partially collapsed Gibbs", **extra_attrs,
                                    "tune": int(tune), "thin": int(thin), "init": init})
     return idata

@@ -115,7 +115,7 @@ from typing import Literal
 
 import numpy as np
 
-from .._random import RngLike, spawn
+from .._random import RngLike
 from ..spec import PriorSpec
 from . import _gibbs_math as gm
 from .data import ModelData
@@ -123,8 +123,6 @@ from .gibbs import GibbsSampler
 
 __all__ = ["MixtureGibbsSampler", "sample_mixture"]
 
-#: :func:`sample_mixture` runs its chains in lockstep when ``chains * N * P^2`` is at most this.
-_LOCKSTEP_SIZE = 4_000_000
 
 
 class MixtureGibbsSampler(GibbsSampler):
@@ -143,6 +141,18 @@ class MixtureGibbsSampler(GibbsSampler):
         Start of the scales and of ``Gamma`` (see :class:`~.gibbs.GibbsSampler`);
         the component means and labels always start from the data (module docstring).
     """
+
+    _PROGRESS = "fast engine (mixture)"
+
+    def _extra_draws(self) -> dict:
+        return {"weight": (self._pi, ["component"]), "component_mean": (self._mu, ["component", "coef"]),
+                "component_center": (self._mu0, ["coef"]), "component_sd": (self._spread, ["coef"])}
+
+    def _extra_coords(self) -> dict:
+        return {"component": list(range(self._K))}
+
+    def _extra_attrs(self) -> dict:
+        return {"population": "mixture", "components": self._K}
 
     def _setup(self, data: ModelData, priors: PriorSpec, rngs: list, init: str) -> None:
         if not np.all(np.asarray(data.random, dtype=bool)):
@@ -381,67 +391,7 @@ def sample_mixture(data: ModelData, priors: PriorSpec, *, chains: int = 4, draws
         sampled (see the module docstring on label switching);
         ``posterior.attrs["population"] = "mixture"``.
     """
-    import arviz as az
+    from .gibbs import sample_fast
 
-    if chains < 1 or draws < 1 or tune < 0 or thin < 1:
-        raise ValueError(f"need chains >= 1, draws >= 1, tune >= 0, thin >= 1; got {chains}, {draws}, {tune}, {thin}")
-    P, Q, N, K = data.n_coef, len(data.covariates), data.n_participants, int(priors.components)
-    sigma_free = data.outcome == "gaussian" and data.obs_sd is None
-    full = priors.covariance == "full"
-    out = {"beta": np.empty((chains, draws, P)), "tau": np.empty((chains, draws, P)),
-           "theta": np.empty((chains, draws, N, P)), "weight": np.empty((chains, draws, K)),
-           "component_mean": np.empty((chains, draws, K, P)), "component_center": np.empty((chains, draws, P)),
-           "component_sd": np.empty((chains, draws, P))}
-    if Q:
-        out["gamma"] = np.empty((chains, draws, P, Q))
-    if sigma_free:
-        out["sigma"] = np.empty((chains, draws))
-    if full:
-        out["corr"] = np.empty((chains, draws, P, P))
-    n_evals = np.empty((chains, draws), dtype=np.int64)
-    streams = spawn(rng, chains)
-    lockstep = chains * N * P * P <= _LOCKSTEP_SIZE
-    runs = [list(range(chains))] if lockstep else [[c] for c in range(chains)]
-    iterator = runs
-    if progress:
-        from tqdm.auto import tqdm
-
-        iterator = tqdm(runs, desc="fast engine (mixture)", unit="chain" if not lockstep else "run")
-    for cs in iterator:
-        s = MixtureGibbsSampler._chains(data, priors, [streams[c] for c in cs], init)
-        s.sweep(tune)
-        for d in range(draws):
-            s.sweep(thin)
-            out["beta"][cs, d] = s._beta
-            out["tau"][cs, d] = s._tau
-            out["theta"][cs, d] = s._theta
-            out["weight"][cs, d] = s._pi
-            out["component_mean"][cs, d] = s._mu
-            out["component_center"][cs, d] = s._mu0
-            out["component_sd"][cs, d] = s._spread
-            if Q:
-                out["gamma"][cs, d] = s._gamma
-            if sigma_free:
-                out["sigma"][cs, d] = s._sigma
-            if full:
-                out["corr"][cs, d] = s._corr_chol @ np.swapaxes(s._corr_chol, 1, 2)
-            n_evals[cs, d] = s._n_evals
-    coef = list(data.coef)
-    coords = {"coef": coef, "participant": list(data.participants), "component": list(range(K))}
-    dims = {"beta": ["coef"], "tau": ["coef"], "theta": ["participant", "coef"], "weight": ["component"],
-            "component_mean": ["component", "coef"], "component_center": ["coef"], "component_sd": ["coef"]}
-    if Q:
-        coords["covariate"] = list(data.covariates)
-        dims["gamma"] = ["coef", "covariate"]
-    if full:
-        coords["coef_"] = coef
-        dims["corr"] = ["coef", "coef_"]
-    coords["obs"] = np.arange(len(data.y))
-    dims["y"] = ["obs"]
-    idata = az.from_dict(posterior=out, observed_data={"y": data.y}, sample_stats={"n_evals": n_evals},
-                         coords=coords, dims=dims)
-    for group in ("posterior", "sample_stats"):
-        idata[group].attrs.update({"engine": "fast", "sampler": "partially collapsed Gibbs",
-                                   "population": "mixture", "components": K, "tune": int(tune),
-                                   "thin": int(thin), "init": init})
-    return idata
+    return sample_fast(data, priors, chains=chains, draws=draws, tune=tune, thin=thin, rng=rng, progress=progress,
+                       init=init, sampler=MixtureGibbsSampler)
