@@ -1221,6 +1221,18 @@ class GibbsSampler:
         self._count(k)
         self._tau = tau
 
+    def _mean_terms(self, Abs, Ls) -> tuple[np.ndarray, np.ndarray]:
+        """Each participant's likelihood of its prior mean, theta integrated out: precision (chain, N, P*P)
+        and linear term (chain, N, P), assembled from the coefficient groups."""
+        C, N, P = self._theta.shape
+        Pm = np.zeros((C, N, P * P))
+        cm = np.zeros((C, N, P))
+        for grp, (A, b), L in zip(self._groups, Abs, Ls):
+            Pb, cb = gm.group_mean_precision(A, b, L)
+            Pm[:, :, grp.flat] = np.broadcast_to(Pb, (C,) + Pb.shape[1:]).reshape(C, N, -1)
+            cm[:, :, grp.idx.ravel()] = np.broadcast_to(cb, (C,) + cb.shape[1:]).reshape(C, N, -1)
+        return Pm, cm
+
     def _update_mean(self, Abs, Ls) -> None:
         C, N, P = self._theta.shape
         Z = self._Z
@@ -1235,12 +1247,7 @@ class GibbsSampler:
                 lin[:, grp.idx.ravel()] = np.broadcast_to(cb.sum(axis=1), (C,) + cb.shape[2:]).reshape(C, -1)
             prec = prec.reshape(C, P, P)
         else:
-            Pm = np.zeros((C, N, P * P))
-            cm = np.zeros((C, N, P))
-            for grp, (A, b), L in zip(self._groups, Abs, Ls):
-                Pb, cb = gm.group_mean_precision(A, b, L)
-                Pm[:, :, grp.flat] = np.broadcast_to(Pb, (C,) + Pb.shape[1:]).reshape(C, N, -1)
-                cm[:, :, grp.idx.ravel()] = np.broadcast_to(cb, (C,) + cb.shape[1:]).reshape(C, N, -1)
+            Pm, cm = self._mean_terms(Abs, Ls)
             # sum_i (z_i z_i') (x) P_i, ordered (covariate slot, coefficient)
             zz = (Z[:, :, None] * Z[:, None, :]).reshape(N, a * a)
             prec = np.einsum("nz,cnf->czf", zz, Pm).reshape(C, a, a, P, P).transpose(0, 1, 3, 2, 4).reshape(C, D, D)

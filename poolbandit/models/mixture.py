@@ -320,12 +320,7 @@ class MixtureGibbsSampler(GibbsSampler):
         K, Q = self._K, self._W.shape[1]
         a = K + Q
         D = a * P
-        Pm = np.zeros((C, N, P * P))
-        cm = np.zeros((C, N, P))
-        for grp, (A, b), L in zip(self._groups, Abs, Ls):
-            Pb, cb = gm.group_mean_precision(A, b, L)
-            Pm[:, :, grp.flat] = np.broadcast_to(Pb, (C,) + Pb.shape[1:]).reshape(C, N, -1)
-            cm[:, :, grp.idx.ravel()] = np.broadcast_to(cb, (C,) + cb.shape[1:]).reshape(C, N, -1)
+        Pm, cm = self._mean_terms(Abs, Ls)
         onehot = np.eye(K)[self._z]  # (chain, N, K)
         if Q:
             Z = np.concatenate([onehot, np.broadcast_to(self._W, (C, N, Q))], axis=2)
