@@ -295,12 +295,13 @@ TWO_ARM_POLICIES = {
 
 def test_bayes_optimal_value_agrees_with_simulation_of_the_policy():
     """Monte Carlo check of the backward induction: the computed policy run by the simulator on
-    4,000 participants drawn from the prior (adherence 1, no dropout; feedback delayed by one
+    40,000 participants drawn from the prior (adherence 1, no dropout; feedback delayed by one
     step is immediate for a participant deciding once a day). Mean regret agrees with the Bayes
-    regret within 4 standard errors (se from the participants' regrets, about 0.03)."""
+    regret within 4 standard errors (se from the participants' regrets, about 0.015, 0.8% of
+    it; the benchmark repeats the check on 400,000 participants)."""
     from poolbandit.simulation import participant_metrics
 
-    design = pooling_scenario("A2", size=4000, policies=TWO_ARM_POLICIES)
+    design = pooling_scenario("A2", size=40_000, policies=TWO_ARM_POLICIES)
     pop = draw_population(design, 5)
     res = run_policy(design, design.policy("limit"), pop, draw_streams(design, pop.size, 6), 7)
     r = participant_metrics(res)["regret"].to_numpy()
@@ -324,8 +325,9 @@ def _bench():
 
 #: The scenario tests reproduce the benchmark's own numbers: its replicates and seeds, and its
 #: policies' streams, which are keyed by policy name so that a subset of the policies gives the
-#: same regrets as the full run. A ratio of paired means then has a standard error of about
-#: 0.01 to 0.04 (printed by the benchmark).
+#: same regrets as the full run. With the benchmark's 96 replicates a ratio of paired means has
+#: a standard error of about 0.01 to 0.02 (printed by the benchmark). Two worker processes (the
+#: CI machine's two cores); the regrets do not depend on the number of workers.
 
 
 @functools.lru_cache(maxsize=None)
@@ -338,7 +340,7 @@ def _scenario_regrets(key):
     if key == "A2":
         table["bayes-optimal"] = 'kind = "bayes-optimal"'
         table["oracle-prior-kg-lookahead-p0"] = hp.ORACLE["oracle-prior-kg-lookahead-p0"]
-    res = hp.collect(key, hp.REPLICATES, hp.scenario_seed(key), 1, policies=table)
+    res = hp.collect(key, hp.REPLICATES, hp.scenario_seed(key), 2, policies=table)
     return {n: v["regret"] for n, v in res.items()}
 
 
@@ -362,7 +364,8 @@ def _scenario_ratio(key, *, reference=None):
 
 def test_scenario_a_beats_pooled_thompson():
     """Scenario A (N 60, K 3, T 21, heterogeneity 0.5): the best horizon-aware pooled rule has at
-    most 0.80 x the regret of pooled Thompson sampling (the benchmark's numbers: 0.704, se 0.020)."""
+    most 0.80 x the regret of pooled Thompson sampling (the benchmark's numbers: 0.679, se 0.010,
+    pooled greedy)."""
     r, best, ref = _scenario_ratio("A", reference="pooled-thompson")
     assert r <= 0.80, (r, best, ref)
 
@@ -370,30 +373,30 @@ def test_scenario_a_beats_pooled_thompson():
 def test_scenario_a_beats_tuned_classic():
     """Scenario A: best horizon-aware pooled rule <= 0.85 x the best tuned classic policy (greedy,
     epsilon-greedy 0.05/0.1, UCB1 c in {0.1, 0.25, 0.5, 1}, tuned on the same replicates).
-    Benchmark: 0.797 (se 0.033), knowledge gradient with lookahead and one forced first decision."""
+    Benchmark: 0.789 (se 0.016), pooled greedy."""
     r, best, ref = _scenario_ratio("A")
     assert r <= 0.85, (r, best, ref)
 
 
 def test_scenario_d_low_heterogeneity():
     """Scenario D (heterogeneity 0.15): best horizon-aware pooled rule <= 0.30 x the best tuned
-    classic (benchmark: 0.184, se 0.013, pooled greedy)."""
+    classic (benchmark: 0.193, se 0.018, pooled greedy)."""
     r, best, ref = _scenario_ratio("D")
     assert r <= 0.30, (r, best, ref)
 
 
 def test_scenario_e_high_heterogeneity():
     """Scenario E (heterogeneity 1.0): best horizon-aware pooled rule never more than 1.05 x the
-    best tuned classic (benchmark: 0.973, se 0.031)."""
+    best tuned classic (benchmark: 0.981, se 0.018, knowledge gradient with lookahead and one
+    forced first decision)."""
     r, best, ref = _scenario_ratio("E")
     assert r <= 1.05, (r, best, ref)
 
 
-@pytest.mark.xfail(strict=True, reason="target not met: benchmark 1.087 (se 0.026) for the best rule without "
-                                       "floor (knowledge gradient with lookahead), 1.125 with the floor")
 def test_scenario_f_four_equal_arms():
     """Scenario F (N 80, K 4, T 28, equal arm means, heterogeneity 0.4): best horizon-aware pooled
-    rule never more than 1.05 x the best tuned classic (UCB1 with c = 0.25 here)."""
+    rule never more than 1.05 x the best tuned classic (benchmark: 1.045, se 0.011, knowledge
+    gradient with lookahead against UCB1 with c = 0.25; little room: 1.107 with the floor)."""
     r, best, ref = _scenario_ratio("F")
     assert r <= 1.05, (r, best, ref)
 
@@ -401,8 +404,8 @@ def test_scenario_f_four_equal_arms():
 def test_two_arm_limit():
     """Two-arm A (means 0, 0.3, heterogeneity 0.5, T 21): against the Bayes-optimal policy (which has
     no floor, so the rules are compared without one too: p_min = 0), the oracle-prior lookahead
-    rule is within 1.03 x and the best pooled rule within 1.25 x (benchmark: 1.004 (se 0.011) and
-    1.121 (se 0.034); with the default floor 1.093 and 1.221, printed there)."""
+    rule is within 1.03 x and the best pooled rule within 1.25 x (benchmark: 0.991 (se 0.006) and
+    1.138 (se 0.020); with the default floor 1.078 and 1.238, printed there)."""
     reg = _scenario_regrets("A2")
     assert _ratio(reg, "oracle-prior-kg-lookahead-p0", "bayes-optimal") <= 1.03
     assert _ratio(reg, _best(reg, list(_bench().FLOORLESS)), "bayes-optimal") <= 1.25
