@@ -24,6 +24,13 @@ true population distribution as prior (simulation only, like
 ``oracle-prior-thompson``): what the rule would do if pooling had already
 learnt the population perfectly.
 
+Before any reward has been observed every pooled kind gives the uniform
+table: the posterior is then the prior, the same for every arm, so every rule
+ties exactly (:meth:`~poolbandit.policies.pooled.PooledThompsonPolicy._prior_only`;
+computed from a few prior draws of the heterogeneity scales, the knowledge
+gradient would rank the arms by Monte Carlo chance and send the whole first
+cohort to one arm).
+
 Belief representation
 ---------------------
 Given the population parameters, a participant's arm values in today's
@@ -329,6 +336,10 @@ class _PooledIndexPolicy(_IndexRule, PooledThompsonPolicy):
     def __init__(self, spec, design, *, truth=None):
         super().__init__(spec, design, truth=truth)
         self._check_floor()
+
+    def _probabilities(self, batch: Batch, rng: np.random.Generator) -> np.ndarray:
+        uniform = self._prior_only(batch)  # nothing observed yet: every arm ties (see pooled-thompson)
+        return uniform if uniform is not None else super()._probabilities(batch, rng)
 
     def _record(self) -> _IndexDraw:
         base = super()._record()

@@ -456,7 +456,25 @@ class PooledThompsonPolicy(Policy):
         return mv, np.einsum("nkp,npq,njq->nkj", R, cov, R)
 
     # -- policy -------------------------------------------------------------
+    def _prior_only(self, batch: Batch) -> np.ndarray | None:
+        """The uniform table while nothing has been observed, else None.
+
+        Before the first reward the posterior is the prior, and the prior is
+        the same for every arm (one ``beta_sd``, one ``tau_scale``), so by
+        symmetry every arm is equally likely to be best (and ties under every
+        index rule of :mod:`~poolbandit.policies.horizon`). The exact table is
+        uniform; computed from a few prior draws of the heterogeneity scales
+        it would only carry their Monte Carlo chance, which a deterministic
+        index rule turns into sending the whole first cohort to one arm.
+        """
+        if self._rows.n:
+            return None
+        return np.full((len(batch), self.n_arms), 1.0 / self.n_arms)
+
     def _probabilities(self, batch: Batch, rng: np.random.Generator) -> np.ndarray:
+        uniform = self._prior_only(batch)
+        if uniform is not None:
+            return uniform
         self._fit(rng)
         p = np.zeros((len(batch), self.n_arms))
         for draw in self._draws:
