@@ -6,10 +6,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from poolbandit._random import spawn
 from poolbandit.models import GibbsSampler, ModelData
 from poolbandit.models import _gibbs_math as gm
-from poolbandit.models import gibbs
 from poolbandit.models._polyagamma import draw_pg, pg_mean, pg_var
 from poolbandit.spec import PriorSpec
 
@@ -52,7 +50,7 @@ _CASES = {
 
 @pytest.mark.parametrize("family", ["half-normal", "half-cauchy"])
 @pytest.mark.parametrize("case", list(_CASES))
-def test_scalar_path_equals_general_path(case, family, monkeypatch):
+def test_scalar_path_equals_general_path(case, family, both_sweep_paths):
     """The closed forms for scalar coefficient blocks (``GibbsSampler._sweep_scalar``) are
     the block algebra of the general sweep specialised to k = 1 (the reference here is
     the general path itself, which the other tests hold to NUTS, eight schools and SBC):
@@ -65,13 +63,7 @@ def test_scalar_path_equals_general_path(case, family, monkeypatch):
         assert not GibbsSampler(data, priors, rng=0)._ridge
     elif case in ("gaussian", "gaussian-covariates", "gaussian-one-fixed"):  # about 2 observations per cell
         assert GibbsSampler(data, priors, rng=0)._ridge
-    draws = []
-    for scalar in (True, False):
-        monkeypatch.setattr(gibbs, "_SCALAR_PATH", scalar)
-        s = GibbsSampler._chains(data, priors, spawn(3, 2), "dispersed")
-        assert s._scalar is scalar
-        s.sweep(25)
-        draws.append((s._tau, s._beta, s._gamma, s._theta, s._sigma, s._n_evals))
+    draws = both_sweep_paths(GibbsSampler, data, priors, ("_tau", "_beta", "_gamma", "_theta", "_sigma", "_n_evals"))
     for fast, general in zip(*draws):
         if fast is None:
             assert general is None

@@ -164,25 +164,16 @@ def test_warm_start_adds_participants_with_labels():
 
 
 @pytest.mark.parametrize("outcome", ["gaussian", "bernoulli"])
-def test_scalar_path_equals_general_path(monkeypatch, outcome):
+def test_scalar_path_equals_general_path(both_sweep_paths, outcome):
     """The base class's closed forms for scalar coefficient blocks (diagonal covariance) must serve the
     mixture too (per-participant prior means m_i = mu_{z_i}): on the same streams, 25 sweeps give the same
     labels, weights, component means, scales and theta as the general block algebra (as
     tests/models/test_gibbs_fast_paths.py checks for the normal model). Tolerance 1e-9: rounding only."""
-    from poolbandit._random import spawn
-    from poolbandit.models import gibbs
-
     design = reference_study(outcome, size=24, horizon=12)
     log = simulate(design, "control", 5).log
     data = ModelData.from_log(log[np.isfinite(log[design.study.reward])], design)
     priors = replace(design.priors, population="mixture", components=3)
-    draws = []
-    for scalar in (True, False):
-        monkeypatch.setattr(gibbs, "_SCALAR_PATH", scalar)
-        s = MixtureGibbsSampler._chains(data, priors, spawn(3, 2), "dispersed")
-        assert s._scalar is scalar
-        s.sweep(25)
-        draws.append((s._z, s._pi, s._mu, s._spread, s._tau, s._theta, s._beta))
+    draws = both_sweep_paths(MixtureGibbsSampler, data, priors, ("_z", "_pi", "_mu", "_spread", "_tau", "_theta", "_beta"))
     for fast, general in zip(*draws):
         np.testing.assert_allclose(fast, general, rtol=0, atol=1e-9)
 
